@@ -1,0 +1,190 @@
+"""Command line: ``altigrade demo | run | validate``.
+
+Exit status: 0 success; 2 bad input or configuration (one clear message, no traceback);
+1 internal error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+from pipeline import __version__
+from pipeline.errors import AltigradeError
+
+__all__ = ["main", "build_parser"]
+
+CAUTION = ("altigrade is a planning aid. Follow the vehicle maker's fuel recommendation; "
+           "local fuel regulations and licensed practice take precedence over its results.")
+
+EPILOG = f"""Exit status: 0 done, 2 bad input or configuration, 1 internal error.
+
+{CAUTION}"""
+
+
+def _repo_config(name: str) -> Path:
+    """The shipped config ``config/<name>`` next to the package (editable install / checkout)."""
+    return Path(__file__).resolve().parent.parent / "config" / name
+
+
+def default_cache_dir() -> Path:
+    env = os.environ.get("ALTIGRADE_CACHE_DIR")
+    if env:
+        return Path(env)
+    base = os.environ.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
+    return Path(base) / "altigrade"
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="altigrade",
+        description="Station elevation, barometric pressure, justified minimum gasoline AKI, "
+        "compliance and maps for mountain regions.",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("--version", action="version", version=f"altigrade {__version__}")
+    verbosity = p.add_mutually_exclusive_group()
+    verbosity.add_argument("-q", "--quiet", action="store_true", help="print only errors")
+    verbosity.add_argument("-v", "--verbose", action="store_true", help="print each stage's details")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    d = sub.add_parser("demo", help="build the invented demo region (if absent) and run it",
+                       description="Build the invented demo region's inputs into a cache folder "
+                       "(once) and run the whole pipeline on them.", epilog=EPILOG,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    d.add_argument("--out", type=Path, default=Path("outputs/demo"), help="output folder (default: outputs/demo)")
+    d.add_argument("--cells", type=int, default=2000, help="DEM size in cells per side (default 2000, ≈90 m)")
+    d.add_argument("--stations", type=int, default=200, help="number of demo stations (default 200)")
+    d.add_argument("--cache-dir", type=Path, default=None,
+                   help="where demo inputs are kept (default: $ALTIGRADE_CACHE_DIR or ~/.cache/altigrade)")
+    d.add_argument("--config", type=Path, default=None, help="demo config (default: config/demo.toml)")
+
+    r = sub.add_parser("run", help="run the pipeline on a config file", epilog=EPILOG,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    r.add_argument("config", type=Path, help="run config (TOML)")
+    r.add_argument("--out", type=Path, default=None, help="output folder (default: outputs/<run name>)")
+
+    v = sub.add_parser("validate", help="check a config and every input it names; run nothing",
+                       epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    v.add_argument("config", type=Path, help="run config (TOML)")
+    return p
+
+
+class _Console:
+    def __init__(self, quiet: bool, verbose: bool):
+        from rich.console import Console
+
+        self.quiet, self.verbose = quiet, verbose
+        self.out = Console(stderr=False, highlight=False)
+        self.err = Console(stderr=True, highlight=False)
+
+    def info(self, msg: str) -> None:
+        if not self.quiet:
+            self.out.print(msg, markup=False)
+
+    def detail(self, msg: str) -> None:
+        if self.verbose:
+            self.out.print(msg, markup=False)
+
+    def error(self, msg: str) -> None:
+        self.err.print(f"altigrade: error: {msg}", markup=False, soft_wrap=True)
+
+
+def _progress_factory(con: _Console):
+    """A rich progress display for long stages; silent when quiet or not a terminal."""
+    if con.quiet or not con.out.is_terminal:
+        return None, (lambda label, frac: None)
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+    prog = Progress(TextColumn("{task.description:<14}"), BarColumn(), TimeElapsedColumn(),
+                    console=con.out, transient=True)
+    tasks: dict[str, int] = {}
+
+    def update(label: str, frac: float) -> None:
+        if label not in tasks:
+            tasks[label] = prog.add_task(label, total=1.0)
+        prog.update(tasks[label], completed=frac)
+
+    return prog, update
+
+
+def _summary(con: _Console, result) -> None:
+    m = result.manifest
+    c = m["counts"]
+    con.info(f"stations read {c.get('rows_in')}: accepted {c.get('rows_accepted')}, "
+             f"rejected {c.get('rows_rejected')} (see layer rejected_stations)")
+    for line in m.get("summary_lines", []):
+        con.info(line)
+    con.info(f"outputs in {result.out_dir}:")
+    for f in m.get("outputs", []):
+        con.info(f"  {f}")
+    con.info(CAUTION)
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 2
+    con = _Console(args.quiet, args.verbose)
+    try:
+        return _dispatch(args, con)
+    except AltigradeError as exc:
+        con.error(str(exc))
+        return 2
+    except KeyboardInterrupt:
+        con.error("interrupted; previous outputs are left as they were")
+        return 130
+    except Exception as exc:  # internal error: say so plainly, keep the traceback for -v
+        if args.verbose:
+            import traceback
+
+            traceback.print_exc()
+        con.error(f"internal error ({type(exc).__name__}: {exc}); rerun with -v for details")
+        return 1
+
+
+def _dispatch(args, con: _Console) -> int:
+    from pipeline.config import load_config
+    from pipeline.stages import run, validate_inputs
+
+    if args.command == "validate":
+        cfg = load_config(args.config)
+        report = validate_inputs(cfg)
+        for line in report:
+            con.info(line)
+        con.info(f"{args.config}: configuration and inputs are usable")
+        return 0
+    prog, update = _progress_factory(con)
+    if args.command == "demo":
+        from pipeline.demo import build_demo_region
+
+        cache = (args.cache_dir or default_cache_dir()) / f"demo-v1-{args.cells}c-{args.stations}s"
+        if args.cells < 100 or args.stations < 10:
+            con.error("--cells must be ≥ 100 and --stations ≥ 10")
+            return 2
+        if not (cache / "README.txt").exists():
+            con.info(f"building the invented demo region in {cache} (once) ...")
+            build_demo_region(cache, size_cells=args.cells, n_stations=args.stations)
+        cfg_path = args.config or _repo_config("demo.toml")
+        cfg = load_config(cfg_path, demo_dir=cache)
+        out = args.out
+    else:
+        cfg = load_config(args.config)
+        out = args.out or Path("outputs") / cfg.name
+    if prog is not None:
+        with prog:
+            result = run(cfg, out, progress=update, log=con.detail)
+    else:
+        result = run(cfg, out, progress=update, log=con.detail)
+    _summary(con, result)
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,226 @@
+"""Run configuration: one TOML file per run, parsed into a frozen, validated object.
+
+The file is read with the standard library's ``tomllib`` (no code is evaluated). Unknown keys and
+wrong types fail with the key path, the file name and, where a close key exists, a suggestion.
+Relative paths resolve against the folder of the config file. Key names carry their units.
+"""
+
+from __future__ import annotations
+
+import difflib
+import tomllib
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from pipeline.errors import ConfigError
+
+__all__ = [
+    "RunConfig",
+    "InputsConfig",
+    "DesignDayConfig",
+    "ZonesConfig",
+    "OutputsConfig",
+    "ExecutionConfig",
+    "load_config",
+    "parse_config",
+]
+
+
+class _Frozen(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+
+class InputsConfig(_Frozen):
+    """Input files. Paths relative to the config file's folder."""
+
+    stations: Path = Field(description="Station table: CSV, or any vector format GDAL reads.")
+    stations_layer: str | None = Field(None, description="Layer name when `stations` is a multi-layer vector file.")
+    stations_crs: str = Field(
+        "EPSG:4326",
+        description="CRS of the coordinate columns (lon/lat or x/y) of a CSV station table.",
+    )
+    dem: Path = Field(description="Digital elevation model: GeoTIFF or VRT mosaic, metres above sea level.")
+    roads: Path | None = Field(None, description="Road network: LineStrings, any vector format GDAL reads.")
+    towns: Path | None = Field(None, description="Towns (Points) with a `population` column.")
+    fleet_zones: Path | None = Field(None, description="Polygons with per-zone fleet mix shares.")
+
+
+class DesignDayConfig(_Frozen):
+    """The weather under which requirements are evaluated (a planning choice)."""
+
+    temperature_offset_k: float = Field(
+        15.0,
+        ge=-40,
+        le=40,
+        description="Offset from the standard-atmosphere temperature [K]; +15 K gives 30 °C at "
+        "sea level and 12 °C at 2,500 m (a warm summer afternoon; planning choice).",
+    )
+    relative_humidity_pct: float = Field(
+        30.0, ge=0, le=100, description="Relative humidity of the design day [%] (dry afternoon)."
+    )
+
+
+class ZonesConfig(_Frozen):
+    """Justified-AKI zones over the DEM."""
+
+    enabled: bool = True
+    resolution_m: float = Field(900.0, gt=0, description="Cell size of the zone grid [m].")
+    band_edges_aki: tuple[float, ...] = Field(
+        (85.0, 86.0, 87.0), description="Edges of the justified-AKI bands [AKI], ascending."
+    )
+    tile_cells: int = Field(512, ge=16, le=8192, description="Zone grid tile size [cells].")
+
+    @field_validator("band_edges_aki")
+    @classmethod
+    def _ascending(cls, v: tuple[float, ...]) -> tuple[float, ...]:
+        if len(v) < 1 or any(b <= a for a, b in zip(v, v[1:], strict=False)):
+            raise ValueError("band edges must be a non-empty, strictly ascending list")
+        return v
+
+
+class OutputsConfig(_Frozen):
+    """What is written, and in which CRS."""
+
+    crs: str = Field("EPSG:4326", description="CRS of every GeoPackage layer.")
+    map_max_basemap_px: int = Field(1400, ge=200, le=6000, description="Hillshade size on the map [px].")
+
+
+class ExecutionConfig(_Frozen):
+    """How the stages run."""
+
+    mode: Literal["local"] = "local"
+    reuse_unchanged_stages: bool = Field(True, description="Skip a stage whose inputs, code and parameters are unchanged.")
+
+
+class StationDefaultsConfig(_Frozen):
+    """Values assumed where a station row leaves an optional column blank."""
+
+    regular_share: float = Field(0.75, ge=0, le=1, description="Share of volume sold as regular [0–1].")
+
+
+class RunConfig(_Frozen):
+    """One run of the pipeline."""
+
+    name: str = Field("run", min_length=1, max_length=80)
+    inputs: InputsConfig
+    design_day: DesignDayConfig = DesignDayConfig()
+    station_defaults: StationDefaultsConfig = StationDefaultsConfig()
+    zones: ZonesConfig = ZonesConfig()
+    outputs: OutputsConfig = OutputsConfig()
+    execution: ExecutionConfig = ExecutionConfig()
+    #: Where the config came from (set by :func:`load_config`; not a TOML key).
+    source: Path | None = Field(None, exclude=True)
+
+    @model_validator(mode="after")
+    def _check(self) -> RunConfig:
+        return self
+
+
+# ------------------------------------------------------------------------------------- loading
+
+
+def _key_path(loc: tuple[Any, ...]) -> str:
+    return ".".join(str(p) for p in loc if not isinstance(p, int)) or "(top level)"
+
+
+def _known_keys(model: type[BaseModel], loc: tuple[Any, ...]) -> list[str]:
+    """Keys that are valid at the parent of ``loc``."""
+    current: Any = model
+    for part in loc[:-1]:
+        field = getattr(current, "model_fields", {}).get(part)
+        if field is None:
+            return []
+        ann = field.annotation
+        current = ann if isinstance(ann, type) and issubclass(ann, BaseModel) else None
+        if current is None:
+            # Optional[Model] or unions: take the first BaseModel argument.
+            for arg in getattr(ann, "__args__", ()):
+                if isinstance(arg, type) and issubclass(arg, BaseModel):
+                    current = arg
+                    break
+        if current is None:
+            return []
+    return [k for k in getattr(current, "model_fields", {}) if k != "source"]
+
+
+def _explain(err: ValidationError, model: type[BaseModel], source: str) -> str:
+    lines = []
+    for e in err.errors()[:8]:
+        loc = tuple(e.get("loc", ()))
+        path = _key_path(loc)
+        if e["type"] == "extra_forbidden":
+            known = _known_keys(model, loc)
+            close = difflib.get_close_matches(str(loc[-1]), known, n=1)
+            hint = f" — did you mean '{close[0]}'?" if close else (
+                f" — valid keys here: {', '.join(known)}" if known else "")
+            lines.append(f"unknown key '{path}'{hint}")
+        elif e["type"] == "missing":
+            lines.append(f"missing key '{path}'")
+        else:
+            got = e.get("input")
+            got_s = f" (got {got!r})" if not isinstance(got, dict | list) else ""
+            lines.append(f"key '{path}': {e['msg']}{got_s}")
+    more = len(err.errors()) - 8
+    if more > 0:
+        lines.append(f"... and {more} more")
+    return f"{source}: " + "; ".join(lines)
+
+
+def _resolve_paths(data: dict[str, Any], base: Path, demo_dir: Path | None) -> dict[str, Any]:
+    inputs = data.get("inputs")
+    if not isinstance(inputs, dict):
+        return data
+    out = dict(inputs)
+    for key, value in inputs.items():
+        if key.endswith(("_crs", "_layer")) or not isinstance(value, str):
+            continue
+        if value.startswith("{demo}"):
+            if demo_dir is None:
+                raise ConfigError(
+                    f"key 'inputs.{key}' uses the {{demo}} folder, which only `altigrade demo` provides"
+                )
+            out[key] = str(demo_dir / value.removeprefix("{demo}").lstrip("/"))
+        else:
+            p = Path(value).expanduser()
+            out[key] = str(p if p.is_absolute() else (base / p))
+    return {**data, "inputs": out}
+
+
+def parse_config(
+    data: dict[str, Any], *, base_dir: Path, source: str = "<config>", demo_dir: Path | None = None
+) -> RunConfig:
+    """Validate a config mapping (as read from TOML) into a :class:`RunConfig`."""
+    if not isinstance(data, dict):
+        raise ConfigError(f"{source}: the config must be a table of keys")
+    data = _resolve_paths(data, base_dir, demo_dir)
+    try:
+        cfg = RunConfig.model_validate(data)
+    except ValidationError as err:
+        raise ConfigError(_explain(err, RunConfig, source)) from None
+    return cfg
+
+
+def load_config(path: str | Path, *, demo_dir: Path | None = None) -> RunConfig:
+    """Read and validate the TOML run config at ``path``.
+
+    Raises
+    ------
+    ConfigError
+        The file is missing, not TOML, or any key is unknown, missing or of the wrong type;
+        the message names the file and the key path.
+    """
+    path = Path(path)
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise ConfigError(f"{path}: cannot read the config file ({exc.strerror or exc})") from None
+    try:
+        data = tomllib.loads(raw.decode("utf-8-sig"))
+    except UnicodeDecodeError:
+        raise ConfigError(f"{path}: the config file is not UTF-8 text") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML ({exc})") from None
+    cfg = parse_config(data, base_dir=path.resolve().parent, source=str(path), demo_dir=demo_dir)
+    return cfg.model_copy(update={"source": path.resolve()})

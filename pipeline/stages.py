@@ -1,0 +1,253 @@
+"""The pipeline's stages, in run order, and the function that runs a config.
+
+Each stage states the columns it requires and adds; the runner (``pipeline.runner``) handles
+ordering, reuse of unchanged stages and the manifest. Calculation lives in the pure modules
+(atmosphere, terrain, requirement, compliance); file access in ``pipeline.io``.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+
+from pipeline import atmosphere, io, terrain
+from pipeline.config import RunConfig
+from pipeline.errors import InputFileError
+from pipeline.ingest import validate_stations
+from pipeline.runner import RunResult, Stage, StageContext, run_stages
+
+__all__ = ["STAGES", "run", "require_columns"]
+
+
+def require_columns(gdf: pd.DataFrame, columns: tuple[str, ...], stage: str) -> None:
+    """Stage-boundary check: the upstream artefact carries the columns this stage reads."""
+    missing = [c for c in columns if c not in gdf.columns]
+    if missing:
+        raise RuntimeError(f"stage {stage}: upstream artefact lacks columns {missing}")
+
+
+# ------------------------------------------------------------------------------- ingest
+def _ingest(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Reads the station table; returns ``stations`` (accepted, EPSG:4326) and ``rejected``."""
+    cfg = ctx.config.inputs
+    table = io.read_station_table(cfg.stations, cfg.stations_layer)
+    res = validate_stations(table, source=str(cfg.stations), default_crs=cfg.stations_crs, today=ctx.today)
+    for note in res.notes:
+        ctx.log(f"ingest: {note}")
+    ctx.counts.update(
+        rows_in=int(len(table.frame)),
+        rows_accepted=int(len(res.accepted)),
+        rows_rejected=int(len(res.rejected)),
+    )
+    ctx.counts["ingest_notes"] = res.notes
+    ctx.counts["station_table"] = {"encoding": table.encoding, "delimiter": table.delimiter,
+                                   "decimal": table.decimal}
+    return {"stations": res.accepted, "rejected": res.rejected}
+
+
+# ------------------------------------------------------------------------------ terrain
+def _terrain(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Adds ``elevation_m``, ``elevation_status``, ``dem_x``, ``dem_y`` (DEM CRS); makes the
+    hillshade basemap for the maps."""
+    st = up["ingest"]["stations"].copy()
+    require_columns(st, ("lon", "lat"), "terrain")
+    with io.open_dem(ctx.config.inputs.dem) as ds:
+        x, y = terrain.transform_points(st["lon"].to_numpy(float), st["lat"].to_numpy(float),
+                                        "EPSG:4326", ds.crs)
+        res = terrain.sample_dem(ds, x, y)
+        basemap = _basemap(ds, ctx)
+        dem_info = {"crs": ds.crs.to_string(), "width": ds.width, "height": ds.height,
+                    "res": list(ds.res), "bounds": list(ds.bounds), "block_shape": list(ds.block_shapes[0])}
+    st["dem_x"] = x
+    st["dem_y"] = y
+    st["elevation_m"] = np.round(res.value, 2)
+    st["elevation_status"] = res.status
+    ctx.counts["dem"] = dem_info
+    ctx.counts["dem_blocks_read"] = res.blocks_read
+    ctx.counts["elevation_status"] = {k: int(v) for k, v in st["elevation_status"].value_counts().items()}
+    return {"stations": st, **basemap}
+
+
+def _basemap(ds, ctx: StageContext) -> dict[str, Any]:
+    try:
+        from pipeline.hillshade import basemap_from_dataset
+    except ImportError:  # pragma: no cover - during development only
+        return {}
+    bm = basemap_from_dataset(ds, max_pixels=ctx.config.outputs.map_max_basemap_px)
+    return {"basemap_png": bm.png_bytes, "basemap_bounds": {"bounds": bm.bounds_latlon}}
+
+
+# --------------------------------------------------------------------------- atmosphere
+def _atmosphere(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Adds ``pressure_kpa``, ``pressure_psi``, ``design_temperature_c``,
+    ``relative_humidity_pct``, ``humidity_ratio_g_per_kg`` (US Standard Atmosphere 1976)."""
+    st = up["terrain"]["stations"].copy()
+    require_columns(st, ("elevation_m",), "atmosphere")
+    z = st["elevation_m"].to_numpy(float)
+    dd = ctx.config.design_day
+    p = atmosphere.standard_pressure_pa(z)
+    t = atmosphere.design_temperature_k(z, dd.temperature_offset_k)
+    rh = dd.relative_humidity_pct / 100.0
+    st["pressure_kpa"] = np.round(atmosphere.pa_to_kpa(p), 3)
+    st["pressure_psi"] = np.round(atmosphere.pa_to_psi(p), 3)
+    st["design_temperature_c"] = np.round(atmosphere.celsius(t), 2)
+    st["relative_humidity_pct"] = np.where(np.isfinite(z), dd.relative_humidity_pct, np.nan)
+    st["humidity_ratio_g_per_kg"] = np.round(atmosphere.humidity_ratio_g_per_kg(t, rh, p), 3)
+    return {"stations": st}
+
+
+# ------------------------------------------------------------------------------ publish
+#: Column order of the published stations layer (present columns first, in this order).
+STATION_COLUMNS_FIRST = (
+    "station_id", "name", "operator", "lon", "lat", "elevation_m", "elevation_status",
+    "pressure_kpa", "pressure_psi", "design_temperature_c", "relative_humidity_pct",
+    "humidity_ratio_g_per_kg", "regular_aki", "midgrade_aki", "premium_aki",
+)
+
+
+def _ordered(gdf: gpd.GeoDataFrame) -> gpd.GeoDataFrame:
+    geom = gdf.geometry.name
+    first = [c for c in STATION_COLUMNS_FIRST if c in gdf.columns]
+    rest = [c for c in gdf.columns if c not in first and c != geom]
+    return gdf[first + rest + [geom]]
+
+
+def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Writes ``altigrade.gpkg`` (layers ``stations``, ``rejected_stations``,
+    ``justified_zones``), ``stations.csv``, ``map.html`` and ``manifest.json`` (all atomic)."""
+    last = up[_LAST_STATION_STAGE]["stations"]
+    stations = _ordered(last.drop(columns=["dem_x", "dem_y"], errors="ignore"))
+    rejected = up["ingest"]["rejected"]
+    rows_in = ctx.counts.get("rows_in")
+    if rows_in is not None and rows_in != len(stations) + len(rejected):
+        raise RuntimeError(f"row accounting broken: {rows_in} in, {len(stations)} + {len(rejected)} out")
+    layers: dict[str, gpd.GeoDataFrame] = {"stations": stations, "rejected_stations": rejected}
+    zones = up.get("zones", {}).get("justified_zones")
+    if zones is not None:
+        layers["justified_zones"] = zones
+    out = ctx.out_dir
+    crs = ctx.config.outputs.crs
+    io.write_gpkg_layers(out / "altigrade.gpkg", layers, crs)
+    io.write_text_atomic(out / "stations.csv", pd.DataFrame(stations.drop(columns=stations.geometry.name)).to_csv(index=False))
+    outputs = ["altigrade.gpkg", "stations.csv"]
+    html = _station_map(ctx, up, stations, zones)
+    if html is not None:
+        io.write_text_atomic(out / "map.html", html)
+        outputs.append("map.html")
+    ctx.counts["outputs"] = outputs
+    return {"stations": stations, "rejected_stations": rejected}
+
+
+def _station_map(ctx, up, stations, zones) -> str | None:
+    from pipeline.maps import station_map_html
+
+    return station_map_html(ctx, up, stations, zones)
+
+
+_LAST_STATION_STAGE = "atmosphere"
+
+
+def _inputs(cfg: RunConfig) -> list[Path]:
+    return [p for p in (cfg.inputs.stations, cfg.inputs.dem, cfg.inputs.fleet_zones) if p is not None]
+
+
+def _dem_files(cfg: RunConfig) -> list[Path]:
+    """The DEM and, for a VRT mosaic, the tiles it names (so a changed tile changes the key)."""
+    files = [cfg.inputs.dem]
+    if cfg.inputs.dem.suffix.lower() == ".vrt" and cfg.inputs.dem.exists():
+        try:
+            import rasterio
+
+            with rasterio.open(cfg.inputs.dem) as ds:
+                files += [Path(f) for f in ds.files[1:]]
+        except Exception:  # a broken VRT is reported by the stage itself
+            pass
+    return files
+
+
+STAGES: list[Stage] = [
+    Stage("ingest", _ingest, params=lambda c: c.inputs.model_dump(mode="json", include={"stations_layer", "stations_crs"}),
+          input_files=lambda c: [c.inputs.stations], modules=("pipeline.ingest", "pipeline.io")),
+    Stage("terrain", _terrain, needs=("ingest",),
+          params=lambda c: {"basemap_px": c.outputs.map_max_basemap_px},
+          input_files=_dem_files, modules=("pipeline.terrain", "pipeline.hillshade", "pipeline.io")),
+    Stage("atmosphere", _atmosphere, needs=("terrain",),
+          params=lambda c: c.design_day.model_dump(mode="json"), modules=("pipeline.atmosphere",)),
+]
+
+
+def _publish_stage() -> Stage:
+    needs = tuple(s.name for s in STAGES)
+    return Stage("publish", _publish, needs=needs, cacheable=False)
+
+
+def run(
+    config: RunConfig,
+    out_dir: str | Path,
+    *,
+    today: dt.date | None = None,
+    progress: Callable[[str, float], None] | None = None,
+    log: Callable[[str], None] | None = None,
+) -> RunResult:
+    """Run every stage of ``config`` and write the outputs into ``out_dir``.
+
+    Returns
+    -------
+    RunResult with each stage's artefacts (``result.stations``, ``result.rejected``) and the
+    manifest, which is also written to ``<out_dir>/manifest.json``.
+    """
+    out = Path(out_dir)
+    _check_out_dir(out)
+    today = today or dt.date.today()
+    result = run_stages([*STAGES, _publish_stage()], config, out, today=today, progress=progress, log=log)
+    result.manifest["outputs"] = result.manifest["counts"].pop("outputs", []) + ["manifest.json"]
+    io.write_text_atomic(out / "manifest.json", json.dumps(result.manifest, indent=2, default=str))
+    return result
+
+
+def _check_out_dir(out: Path) -> None:
+    from pipeline.errors import OutputError
+
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"{out}: the output path exists and is not a folder")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        probe = out / ".write-probe"
+        probe.write_bytes(b"")
+        probe.unlink()
+    except OSError as exc:
+        raise OutputError(f"{out}: cannot write to the output folder ({exc.strerror or exc})") from None
+
+
+def validate_inputs(config: RunConfig) -> list[str]:
+    """Open and check every input the config names, running nothing. Returns report lines.
+
+    Raises
+    ------
+    InputFileError
+        On the first input that cannot be used as a whole.
+    """
+    lines = []
+    table = io.read_station_table(config.inputs.stations, config.inputs.stations_layer)
+    res = validate_stations(table, source=str(config.inputs.stations), default_crs=config.inputs.stations_crs,
+                            today=dt.date.today())
+    lines.append(f"{config.inputs.stations}: {len(table.frame)} rows, {len(res.accepted)} usable, "
+                 f"{len(res.rejected)} would be rejected")
+    for _, r in res.rejected.head(10).iterrows():
+        lines.append(f"  row {r['source_row']}: {r['reject_reason']}")
+    with io.open_dem(config.inputs.dem) as ds:
+        lines.append(f"{config.inputs.dem}: {ds.width}×{ds.height} cells, {ds.crs.to_string()}, "
+                     f"block {ds.block_shapes[0]}")
+    for what, path in (("roads", config.inputs.roads), ("towns", config.inputs.towns),
+                       ("fleet zones", config.inputs.fleet_zones)):
+        if path is not None:
+            gdf = io.read_vector(path, what=what)
+            lines.append(f"{path}: {len(gdf)} {what} features, {gdf.crs.to_string()}")
+    return lines
