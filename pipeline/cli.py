@@ -13,12 +13,11 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from pipeline import __version__
+from pipeline.cautions import CAUTION_LINE as CAUTION
 from pipeline.errors import AltigradeError
 
 __all__ = ["main", "build_parser"]
 
-CAUTION = ("altigrade is a planning aid. Follow the vehicle maker's fuel recommendation; "
-           "local fuel regulations and licensed practice take precedence over its results.")
 
 EPILOG = f"""Exit status: 0 done, 2 bad input or configuration, 1 internal error.
 
@@ -49,27 +48,58 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--version", action="version", version=f"altigrade {__version__}")
     verbosity = p.add_mutually_exclusive_group()
     verbosity.add_argument("-q", "--quiet", action="store_true", help="print only errors")
-    verbosity.add_argument("-v", "--verbose", action="store_true", help="print each stage's details")
+    verbosity.add_argument(
+        "-v", "--verbose", action="store_true", help="print each stage's details"
+    )
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
-    d = sub.add_parser("demo", help="build the invented demo region (if absent) and run it",
-                       description="Build the invented demo region's inputs into a cache folder "
-                       "(once) and run the whole pipeline on them.", epilog=EPILOG,
-                       formatter_class=argparse.RawDescriptionHelpFormatter)
-    d.add_argument("--out", type=Path, default=Path("outputs/demo"), help="output folder (default: outputs/demo)")
-    d.add_argument("--cells", type=int, default=2000, help="DEM size in cells per side (default 2000, ≈90 m)")
-    d.add_argument("--stations", type=int, default=200, help="number of demo stations (default 200)")
-    d.add_argument("--cache-dir", type=Path, default=None,
-                   help="where demo inputs are kept (default: $ALTIGRADE_CACHE_DIR or ~/.cache/altigrade)")
-    d.add_argument("--config", type=Path, default=None, help="demo config (default: config/demo.toml)")
+    d = sub.add_parser(
+        "demo",
+        help="build the invented demo region (if absent) and run it",
+        description="Build the invented demo region's inputs into a cache folder "
+        "(once) and run the whole pipeline on them.",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    d.add_argument(
+        "--out",
+        type=Path,
+        default=Path("outputs/demo"),
+        help="output folder (default: outputs/demo)",
+    )
+    d.add_argument(
+        "--cells", type=int, default=2000, help="DEM size in cells per side (default 2000, ≈90 m)"
+    )
+    d.add_argument(
+        "--stations", type=int, default=200, help="number of demo stations (default 200)"
+    )
+    d.add_argument(
+        "--cache-dir",
+        type=Path,
+        default=None,
+        help="where demo inputs are kept (default: $ALTIGRADE_CACHE_DIR or ~/.cache/altigrade)",
+    )
+    d.add_argument(
+        "--config", type=Path, default=None, help="demo config (default: config/demo.toml)"
+    )
 
-    r = sub.add_parser("run", help="run the pipeline on a config file", epilog=EPILOG,
-                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    r = sub.add_parser(
+        "run",
+        help="run the pipeline on a config file",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     r.add_argument("config", type=Path, help="run config (TOML)")
-    r.add_argument("--out", type=Path, default=None, help="output folder (default: outputs/<run name>)")
+    r.add_argument(
+        "--out", type=Path, default=None, help="output folder (default: outputs/<run name>)"
+    )
 
-    v = sub.add_parser("validate", help="check a config and every input it names; run nothing",
-                       epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    v = sub.add_parser(
+        "validate",
+        help="check a config and every input it names; run nothing",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     v.add_argument("config", type=Path, help="run config (TOML)")
     return p
 
@@ -100,8 +130,13 @@ def _progress_factory(con: _Console):
         return None, (lambda label, frac: None)
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
-    prog = Progress(TextColumn("{task.description:<14}"), BarColumn(), TimeElapsedColumn(),
-                    console=con.out, transient=True)
+    prog = Progress(
+        TextColumn("{task.description:<14}"),
+        BarColumn(),
+        TimeElapsedColumn(),
+        console=con.out,
+        transient=True,
+    )
     tasks: dict[str, int] = {}
 
     def update(label: str, frac: float) -> None:
@@ -115,8 +150,10 @@ def _progress_factory(con: _Console):
 def _summary(con: _Console, result) -> None:
     m = result.manifest
     c = m["counts"]
-    con.info(f"stations read {c.get('rows_in')}: accepted {c.get('rows_accepted')}, "
-             f"rejected {c.get('rows_rejected')} (see layer rejected_stations)")
+    con.info(
+        f"stations read {c.get('rows_in')}: accepted {c.get('rows_accepted')}, "
+        f"rejected {c.get('rows_rejected')} (see layer rejected_stations)"
+    )
     for line in m.get("summary_lines", []):
         con.info(line)
     con.info(f"outputs in {result.out_dir}:")

@@ -20,6 +20,7 @@ __all__ = [
     "RunConfig",
     "InputsConfig",
     "DesignDayConfig",
+    "TerrainConfig",
     "ZonesConfig",
     "OutputsConfig",
     "ExecutionConfig",
@@ -36,15 +37,31 @@ class InputsConfig(_Frozen):
     """Input files. Paths relative to the config file's folder."""
 
     stations: Path = Field(description="Station table: CSV, or any vector format GDAL reads.")
-    stations_layer: str | None = Field(None, description="Layer name when `stations` is a multi-layer vector file.")
+    stations_layer: str | None = Field(
+        None, description="Layer name when `stations` is a multi-layer vector file."
+    )
     stations_crs: str = Field(
         "EPSG:4326",
         description="CRS of the coordinate columns (lon/lat or x/y) of a CSV station table.",
     )
-    dem: Path = Field(description="Digital elevation model: GeoTIFF or VRT mosaic, metres above sea level.")
-    roads: Path | None = Field(None, description="Road network: LineStrings, any vector format GDAL reads.")
+    dem: Path = Field(
+        description="Digital elevation model: GeoTIFF or VRT mosaic, metres above sea level."
+    )
+    roads: Path | None = Field(
+        None, description="Road network: LineStrings, any vector format GDAL reads."
+    )
     towns: Path | None = Field(None, description="Towns (Points) with a `population` column.")
     fleet_zones: Path | None = Field(None, description="Polygons with per-zone fleet mix shares.")
+
+
+class TerrainConfig(_Frozen):
+    """Station elevation from the DEM."""
+
+    reject_unplaced: bool = Field(
+        True,
+        description="Move stations the DEM cannot place (outside its extent, on nodata) to "
+        "rejected_stations with the reason; false keeps them as not assessed.",
+    )
 
 
 class DesignDayConfig(_Frozen):
@@ -84,20 +101,26 @@ class OutputsConfig(_Frozen):
     """What is written, and in which CRS."""
 
     crs: str = Field("EPSG:4326", description="CRS of every GeoPackage layer.")
-    map_max_basemap_px: int = Field(1400, ge=200, le=6000, description="Hillshade size on the map [px].")
+    map_max_basemap_px: int = Field(
+        1400, ge=200, le=6000, description="Hillshade size on the map [px]."
+    )
 
 
 class ExecutionConfig(_Frozen):
     """How the stages run."""
 
     mode: Literal["local"] = "local"
-    reuse_unchanged_stages: bool = Field(True, description="Skip a stage whose inputs, code and parameters are unchanged.")
+    reuse_unchanged_stages: bool = Field(
+        True, description="Skip a stage whose inputs, code and parameters are unchanged."
+    )
 
 
 class StationDefaultsConfig(_Frozen):
     """Values assumed where a station row leaves an optional column blank."""
 
-    regular_share: float = Field(0.75, ge=0, le=1, description="Share of volume sold as regular [0–1].")
+    regular_share: float = Field(
+        0.75, ge=0, le=1, description="Share of volume sold as regular [0–1]."
+    )
 
 
 class RunConfig(_Frozen):
@@ -105,6 +128,7 @@ class RunConfig(_Frozen):
 
     name: str = Field("run", min_length=1, max_length=80)
     inputs: InputsConfig
+    terrain: TerrainConfig = TerrainConfig()
     design_day: DesignDayConfig = DesignDayConfig()
     station_defaults: StationDefaultsConfig = StationDefaultsConfig()
     zones: ZonesConfig = ZonesConfig()
@@ -153,8 +177,11 @@ def _explain(err: ValidationError, model: type[BaseModel], source: str) -> str:
         if e["type"] == "extra_forbidden":
             known = _known_keys(model, loc)
             close = difflib.get_close_matches(str(loc[-1]), known, n=1)
-            hint = f" — did you mean '{close[0]}'?" if close else (
-                f" — valid keys here: {', '.join(known)}" if known else "")
+            hint = (
+                f" — did you mean '{close[0]}'?"
+                if close
+                else (f" — valid keys here: {', '.join(known)}" if known else "")
+            )
             lines.append(f"unknown key '{path}'{hint}")
         elif e["type"] == "missing":
             lines.append(f"missing key '{path}'")

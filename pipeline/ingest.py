@@ -45,12 +45,16 @@ DATE_COLUMNS = ("last_inspection_date", "field_test_date")
 TEXT_COLUMNS = ("station_id", "name", "operator")
 #: Alternative spellings understood for the standard columns.
 ALIASES = {
-    "longitude": "lon", "long": "lon", "lng": "lon",
+    "longitude": "lon",
+    "long": "lon",
+    "lng": "lon",
     "latitude": "lat",
-    "id": "station_id", "station": "station_id",
+    "id": "station_id",
+    "station": "station_id",
     "station_name": "name",
     "regular": "regular_aki",
-    "easting": "x", "northing": "y",
+    "easting": "x",
+    "northing": "y",
 }
 
 
@@ -146,7 +150,10 @@ def validate_stations(
         pts = geom.copy()
         if multi1.any():
             counts = shapely.get_num_geometries(geom.to_numpy())
-            flag(multi1 & (counts > 1), "multi-point geometry with several points: ambiguous position")
+            flag(
+                multi1 & (counts > 1),
+                "multi-point geometry with several points: ambiguous position",
+            )
             single = multi1 & (counts == 1)
             pts[single] = shapely.get_geometry(geom.to_numpy()[single], 0)
         notpoint = ~empty & ~np.isin(kinds, ["Point", "MultiPoint"])
@@ -167,14 +174,25 @@ def validate_stations(
         bad_x = np.isnan(xs)
         bad_y = np.isnan(ys)
         flag(bad_x & (frame[xcol] == "").to_numpy(), f"missing {xcol}")
-        flag(bad_x & (frame[xcol] != "").to_numpy(), lambda i: f"{xcol} is not a number: {frame[xcol].iloc[i]!r}")
+        flag(
+            bad_x & (frame[xcol] != "").to_numpy(),
+            lambda i: f"{xcol} is not a number: {frame[xcol].iloc[i]!r}",
+        )
         flag(bad_y & (frame[ycol] == "").to_numpy(), f"missing {ycol}")
-        flag(bad_y & (frame[ycol] != "").to_numpy(), lambda i: f"{ycol} is not a number: {frame[ycol].iloc[i]!r}")
+        flag(
+            bad_y & (frame[ycol] != "").to_numpy(),
+            lambda i: f"{ycol} is not a number: {frame[ycol].iloc[i]!r}",
+        )
     if crs_in.is_geographic:
         lon, lat = xs.copy(), ys.copy()
         fin = np.isfinite(lon) & np.isfinite(lat)
         swapped = fin & (np.abs(lat) > 90) & (np.abs(lon) <= 90)
-        flag(swapped, lambda i: f"latitude {lat[i]:g} is beyond ±90 while longitude {lon[i]:g} is within: lon/lat look swapped")
+        flag(
+            swapped,
+            lambda i: (
+                f"latitude {lat[i]:g} is beyond ±90 while longitude {lon[i]:g} is within: lon/lat look swapped"
+            ),
+        )
         wrap = fin & ~swapped & (lon > 180) & (lon <= 360) & (np.abs(lat) <= 90)
         if wrap.any():
             lon[wrap] -= 360.0
@@ -195,7 +213,10 @@ def validate_stations(
         # Projected coordinates that look like degrees: the CRS contradicts the numbers.
         degrees_like = fin & (np.abs(xs) <= 180) & (np.abs(ys) <= 90)
         if degrees_like.sum() > 0.5 * max(fin.sum(), 1):
-            flag(degrees_like, f"x/y look like degrees but the table's CRS is projected ({crs_in.to_string()})")
+            flag(
+                degrees_like,
+                f"x/y look like degrees but the table's CRS is projected ({crs_in.to_string()})",
+            )
 
     # --- numbers
     typed: dict[str, np.ndarray] = {}
@@ -207,6 +228,7 @@ def validate_stations(
         nonnum = np.isnan(v) & (raw != "")
         flag(nonnum, lambda i, c=c, raw=raw: f"{c} is not a number: {raw[i]!r}")
         out = np.isfinite(v) & ((v < lo) | (v > hi))
+
         def _why(i, c=c, v=v, lo=lo, hi=hi):
             extra = ""
             if c.endswith("_aki") and lo * 10 <= v[i] <= hi * 10:
@@ -214,18 +236,30 @@ def validate_stations(
             elif c.endswith("_aki") and lo / 10 <= v[i] <= hi / 10:
                 extra = " (looks like AKI ÷ 10)"
             return f"{c} {v[i]:g} outside the plausible range {lo:g}–{hi:g}{extra}"
+
         flag(out, _why)
         typed[c] = v
     if "regular_aki" in typed:
-        flag(np.isnan(typed["regular_aki"]) & (frame["regular_aki"] == "").to_numpy(), "missing regular_aki")
+        flag(
+            np.isnan(typed["regular_aki"]) & (frame["regular_aki"] == "").to_numpy(),
+            "missing regular_aki",
+        )
     for grade in ("midgrade_aki", "premium_aki"):
         if grade in typed and "regular_aki" in typed:
             lower = np.isfinite(typed[grade]) & (typed[grade] < typed["regular_aki"])
-            flag(lower, lambda i, g=grade: f"{g} {typed[g][i]:g} is below regular_aki {typed['regular_aki'][i]:g}")
+            flag(
+                lower,
+                lambda i, g=grade: (
+                    f"{g} {typed[g][i]:g} is below regular_aki {typed['regular_aki'][i]:g}"
+                ),
+            )
     for c in ("past_test_failures", "complaints"):
         if c in typed:
             v = typed[c]
-            flag(np.isfinite(v) & (v != np.round(v)), lambda i, c=c, v=v: f"{c} {v[i]:g} is not a whole number")
+            flag(
+                np.isfinite(v) & (v != np.round(v)),
+                lambda i, c=c, v=v: f"{c} {v[i]:g} is not a whole number",
+            )
 
     dates: dict[str, pd.Series] = {}
     for c in DATE_COLUMNS:
@@ -236,14 +270,19 @@ def validate_stations(
         badd = parsed.isna().to_numpy() & (raw != "").to_numpy()
         flag(badd, lambda i, c=c, raw=raw: f"{c} is not a date (YYYY-MM-DD): {raw.iloc[i]!r}")
         future = (parsed > pd.Timestamp(today)).fillna(False).to_numpy(dtype=bool)
-        flag(future, lambda i, c=c, raw=raw: f"{c} {raw.iloc[i]} is after the run date {today.isoformat()}")
+        flag(
+            future,
+            lambda i, c=c, raw=raw: f"{c} {raw.iloc[i]} is after the run date {today.isoformat()}",
+        )
         dates[c] = parsed
 
     # --- duplicates (after the row checks, among rows that are otherwise fine or not)
     ids = frame["station_id"].to_numpy()
     dup_mask = pd.Series(ids).duplicated(keep=False).to_numpy() & (ids != "")
     if dup_mask.any():
-        compare = frame.drop(columns=[c for c in frame.columns if c.startswith("_")], errors="ignore")
+        compare = frame.drop(
+            columns=[c for c in frame.columns if c.startswith("_")], errors="ignore"
+        )
         for sid in pd.unique(ids[dup_mask]):
             members = np.flatnonzero(ids == sid)
             rows_txt = ", ".join(str(table.source_rows[m]) for m in members)
@@ -251,10 +290,14 @@ def validate_stations(
             identical = len(block.drop_duplicates()) == 1
             if identical:
                 for m in members[1:]:
-                    reasons[m].append(f"duplicate of row {table.source_rows[members[0]]} (identical data)")
+                    reasons[m].append(
+                        f"duplicate of row {table.source_rows[members[0]]} (identical data)"
+                    )
             else:
                 for m in members:
-                    reasons[m].append(f"station_id {sid!r} appears in rows {rows_txt} with conflicting data")
+                    reasons[m].append(
+                        f"station_id {sid!r} appears in rows {rows_txt} with conflicting data"
+                    )
 
     rejected_mask = np.array([bool(r) for r in reasons], dtype=bool)
     geometry = gpd.points_from_xy(x4326, y4326)
@@ -274,11 +317,17 @@ def validate_stations(
     for c in ("x", "y"):
         if c in acc.columns and c in typed:
             pass
-    accepted = gpd.GeoDataFrame(acc[~rejected_mask].reset_index(drop=True),
-                                geometry=list(geometry[~rejected_mask]), crs="EPSG:4326")
+    accepted = gpd.GeoDataFrame(
+        acc[~rejected_mask].reset_index(drop=True),
+        geometry=list(geometry[~rejected_mask]),
+        crs="EPSG:4326",
+    )
     rej = frame.copy()
     rej.insert(0, "source_row", table.source_rows)
     rej["reject_reason"] = ["; ".join(r) for r in reasons]
-    rejected = gpd.GeoDataFrame(rej[rejected_mask].reset_index(drop=True),
-                                geometry=list(geometry[rejected_mask]), crs="EPSG:4326")
+    rejected = gpd.GeoDataFrame(
+        rej[rejected_mask].reset_index(drop=True),
+        geometry=list(geometry[rejected_mask]),
+        crs="EPSG:4326",
+    )
     return IngestResult(accepted, rejected, notes)

@@ -51,8 +51,9 @@ class RawTable:
     encoding, delimiter, decimal : how a CSV was read (for the manifest)
     """
 
-    def __init__(self, frame, source_rows, geometry=None, crs=None, *, encoding="", delimiter="",
-                 decimal="."):
+    def __init__(
+        self, frame, source_rows, geometry=None, crs=None, *, encoding="", delimiter="", decimal="."
+    ):
         self.frame = frame
         self.source_rows = np.asarray(source_rows, dtype=np.int64)
         self.geometry = geometry
@@ -82,7 +83,9 @@ def _decode(raw: bytes, path: Path) -> tuple[str, str]:
             return raw.decode(enc), enc
         except UnicodeDecodeError:
             continue
-    raise InputFileError(f"{path}: cannot decode the text")  # pragma: no cover - latin-1 decodes all
+    raise InputFileError(
+        f"{path}: cannot decode the text"
+    )  # pragma: no cover - latin-1 decodes all
 
 
 def _sniff_delimiter(text: str) -> str:
@@ -177,8 +180,12 @@ def _read_station_vector(path: Path, layer: str | None) -> RawTable:
     attrs = pd.DataFrame(gdf.drop(columns=[gdf.geometry.name]) if geom is not None else gdf)
     frame = attrs.astype(object).where(attrs.notna(), "").astype(str)
     frame = frame.apply(lambda s: s.str.strip())
-    return RawTable(frame, np.arange(1, len(frame) + 1), geometry=geom,
-                    crs=gdf.crs if geom is not None else None)
+    return RawTable(
+        frame,
+        np.arange(1, len(frame) + 1),
+        geometry=geom,
+        crs=gdf.crs if geom is not None else None,
+    )
 
 
 def open_dem(path: Path) -> rasterio.io.DatasetReader:
@@ -274,5 +281,4 @@ def write_gpkg_layers(final: Path, layers: dict[str, gpd.GeoDataFrame], crs: CRS
                 g = g.to_crs(crs)
             elif g.crs is None:
                 g = g.set_crs(crs, allow_override=True)
-            pyogrio.write_dataframe(g, tmp, layer=name, driver="GPKG",
-                                    promote_to_multi=False)
+            pyogrio.write_dataframe(g, tmp, layer=name, driver="GPKG", promote_to_multi=False)

@@ -183,7 +183,9 @@ def run_stages(
             "inputs": {str(f): input_hashes[str(f)] for f in files},
             "upstream": {n: keys[n] for n in stage.needs},
         }
-        key = hashlib.sha256(json.dumps(key_src, sort_keys=True, default=_json_default).encode()).hexdigest()
+        key = hashlib.sha256(
+            json.dumps(key_src, sort_keys=True, default=_json_default).encode()
+        ).hexdigest()
         keys[stage.name] = key
         stage_dir = cache_root / stage.name
         key_file = stage_dir / "key.json"
@@ -209,7 +211,12 @@ def run_stages(
                 key_file.unlink()
             names = _save(stage_dir, result)
             stage_counts = {k: v for k, v in counts.items() if before.get(k) != v}
-            write_text_atomic(key_file, json.dumps({"key": key, "files": names, "counts": stage_counts}, default=_json_default))
+            write_text_atomic(
+                key_file,
+                json.dumps(
+                    {"key": key, "files": names, "counts": stage_counts}, default=_json_default
+                ),
+            )
         timings[stage.name] = time.perf_counter() - t0
         progress(stage.name, 1.0)
         log(f"{stage.name}: done in {timings[stage.name]:.2f} s")
@@ -232,8 +239,20 @@ def run_stages(
 def _package_versions() -> dict[str, str]:
     from importlib import metadata
 
-    names = ["numpy", "scipy", "pandas", "geopandas", "shapely", "pyproj", "pyogrio", "rasterio",
-             "pydantic", "folium", "matplotlib", "scikit-image"]
+    names = [
+        "numpy",
+        "scipy",
+        "pandas",
+        "geopandas",
+        "shapely",
+        "pyproj",
+        "pyogrio",
+        "rasterio",
+        "pydantic",
+        "folium",
+        "matplotlib",
+        "scikit-image",
+    ]
     out = {}
     for n in names:
         try:

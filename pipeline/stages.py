@@ -19,7 +19,6 @@ import pandas as pd
 
 from pipeline import atmosphere, io, terrain
 from pipeline.config import RunConfig
-from pipeline.errors import InputFileError
 from pipeline.ingest import validate_stations
 from pipeline.runner import RunResult, Stage, StageContext, run_stages
 
@@ -38,7 +37,9 @@ def _ingest(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     """Reads the station table; returns ``stations`` (accepted, EPSG:4326) and ``rejected``."""
     cfg = ctx.config.inputs
     table = io.read_station_table(cfg.stations, cfg.stations_layer)
-    res = validate_stations(table, source=str(cfg.stations), default_crs=cfg.stations_crs, today=ctx.today)
+    res = validate_stations(
+        table, source=str(cfg.stations), default_crs=cfg.stations_crs, today=ctx.today
+    )
     for note in res.notes:
         ctx.log(f"ingest: {note}")
     ctx.counts.update(
@@ -47,8 +48,11 @@ def _ingest(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
         rows_rejected=int(len(res.rejected)),
     )
     ctx.counts["ingest_notes"] = res.notes
-    ctx.counts["station_table"] = {"encoding": table.encoding, "delimiter": table.delimiter,
-                                   "decimal": table.decimal}
+    ctx.counts["station_table"] = {
+        "encoding": table.encoding,
+        "delimiter": table.delimiter,
+        "decimal": table.decimal,
+    }
     return {"stations": res.accepted, "rejected": res.rejected}
 
 
@@ -59,20 +63,57 @@ def _terrain(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     st = up["ingest"]["stations"].copy()
     require_columns(st, ("lon", "lat"), "terrain")
     with io.open_dem(ctx.config.inputs.dem) as ds:
-        x, y = terrain.transform_points(st["lon"].to_numpy(float), st["lat"].to_numpy(float),
-                                        "EPSG:4326", ds.crs)
+        x, y = terrain.transform_points(
+            st["lon"].to_numpy(float), st["lat"].to_numpy(float), "EPSG:4326", ds.crs
+        )
         res = terrain.sample_dem(ds, x, y)
         basemap = _basemap(ds, ctx)
-        dem_info = {"crs": ds.crs.to_string(), "width": ds.width, "height": ds.height,
-                    "res": list(ds.res), "bounds": list(ds.bounds), "block_shape": list(ds.block_shapes[0])}
+        dem_info = {
+            "crs": ds.crs.to_string(),
+            "width": ds.width,
+            "height": ds.height,
+            "res": list(ds.res),
+            "bounds": list(ds.bounds),
+            "block_shape": list(ds.block_shapes[0]),
+        }
     st["dem_x"] = x
     st["dem_y"] = y
     st["elevation_m"] = np.round(res.value, 2)
     st["elevation_status"] = res.status
     ctx.counts["dem"] = dem_info
     ctx.counts["dem_blocks_read"] = res.blocks_read
-    ctx.counts["elevation_status"] = {k: int(v) for k, v in st["elevation_status"].value_counts().items()}
-    return {"stations": st, **basemap}
+    ctx.counts["elevation_status"] = {
+        k: int(v) for k, v in st["elevation_status"].value_counts().items()
+    }
+    unplaced = ~np.isfinite(st["elevation_m"].to_numpy(float))
+    rejected = _as_rejected(st.iloc[0:0], [])
+    if ctx.config.terrain.reject_unplaced and unplaced.any():
+        why = {
+            terrain.STATUS_OUTSIDE: "outside the DEM extent",
+            terrain.STATUS_NODATA: "DEM has no data at the station",
+            terrain.STATUS_BAD_COORD: "coordinates cannot be placed on the DEM",
+        }
+        reasons = [
+            f"{why.get(s, s)} ({ctx.config.inputs.dem.name})"
+            for s in st.loc[unplaced, "elevation_status"]
+        ]
+        rejected = _as_rejected(
+            st[unplaced].drop(columns=["dem_x", "dem_y", "elevation_m"]), reasons
+        )
+        st = st[~unplaced].reset_index(drop=True)
+        ctx.counts["rows_rejected_terrain"] = int(unplaced.sum())
+    return {"stations": st, "rejected": rejected, **basemap}
+
+
+def _as_rejected(gdf: gpd.GeoDataFrame, reasons: list[str]) -> gpd.GeoDataFrame:
+    """Rows leaving the station table after ingest, as text like ingest's rejected rows."""
+    geom = gdf.geometry
+    attrs = pd.DataFrame(gdf.drop(columns=[gdf.geometry.name]))
+    text = attrs.astype(object).where(attrs.notna(), "").astype(str)
+    if "source_row" in attrs.columns:
+        text["source_row"] = attrs["source_row"].astype("int64")
+    text["reject_reason"] = reasons
+    return gpd.GeoDataFrame(text.reset_index(drop=True), geometry=list(geom), crs=gdf.crs)
 
 
 def _basemap(ds, ctx: StageContext) -> dict[str, Any]:
@@ -106,9 +147,21 @@ def _atmosphere(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, A
 # ------------------------------------------------------------------------------ publish
 #: Column order of the published stations layer (present columns first, in this order).
 STATION_COLUMNS_FIRST = (
-    "station_id", "name", "operator", "lon", "lat", "elevation_m", "elevation_status",
-    "pressure_kpa", "pressure_psi", "design_temperature_c", "relative_humidity_pct",
-    "humidity_ratio_g_per_kg", "regular_aki", "midgrade_aki", "premium_aki",
+    "station_id",
+    "name",
+    "operator",
+    "lon",
+    "lat",
+    "elevation_m",
+    "elevation_status",
+    "pressure_kpa",
+    "pressure_psi",
+    "design_temperature_c",
+    "relative_humidity_pct",
+    "humidity_ratio_g_per_kg",
+    "regular_aki",
+    "midgrade_aki",
+    "premium_aki",
 )
 
 
@@ -124,10 +177,17 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     ``justified_zones``), ``stations.csv``, ``map.html`` and ``manifest.json`` (all atomic)."""
     last = up[_LAST_STATION_STAGE]["stations"]
     stations = _ordered(last.drop(columns=["dem_x", "dem_y"], errors="ignore"))
-    rejected = up["ingest"]["rejected"]
+    rejected = pd.concat([up["ingest"]["rejected"], up["terrain"]["rejected"]], ignore_index=True)
+    rejected = gpd.GeoDataFrame(
+        rejected.sort_values("source_row", kind="stable").reset_index(drop=True),
+        geometry="geometry",
+        crs="EPSG:4326",
+    )
     rows_in = ctx.counts.get("rows_in")
     if rows_in is not None and rows_in != len(stations) + len(rejected):
-        raise RuntimeError(f"row accounting broken: {rows_in} in, {len(stations)} + {len(rejected)} out")
+        raise RuntimeError(
+            f"row accounting broken: {rows_in} in, {len(stations)} + {len(rejected)} out"
+        )
     layers: dict[str, gpd.GeoDataFrame] = {"stations": stations, "rejected_stations": rejected}
     zones = up.get("zones", {}).get("justified_zones")
     if zones is not None:
@@ -135,9 +195,12 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     out = ctx.out_dir
     crs = ctx.config.outputs.crs
     io.write_gpkg_layers(out / "altigrade.gpkg", layers, crs)
-    io.write_text_atomic(out / "stations.csv", pd.DataFrame(stations.drop(columns=stations.geometry.name)).to_csv(index=False))
+    io.write_text_atomic(
+        out / "stations.csv",
+        pd.DataFrame(stations.drop(columns=stations.geometry.name)).to_csv(index=False),
+    )
     outputs = ["altigrade.gpkg", "stations.csv"]
-    html = _station_map(ctx, up, stations, zones)
+    html = _station_map(ctx, up, stations, zones, rejected)
     if html is not None:
         io.write_text_atomic(out / "map.html", html)
         outputs.append("map.html")
@@ -145,17 +208,19 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     return {"stations": stations, "rejected_stations": rejected}
 
 
-def _station_map(ctx, up, stations, zones) -> str | None:
+def _station_map(ctx, up, stations, zones, rejected) -> str | None:
     from pipeline.maps import station_map_html
 
-    return station_map_html(ctx, up, stations, zones)
+    return station_map_html(ctx, up, stations, zones, rejected)
 
 
 _LAST_STATION_STAGE = "atmosphere"
 
 
 def _inputs(cfg: RunConfig) -> list[Path]:
-    return [p for p in (cfg.inputs.stations, cfg.inputs.dem, cfg.inputs.fleet_zones) if p is not None]
+    return [
+        p for p in (cfg.inputs.stations, cfg.inputs.dem, cfg.inputs.fleet_zones) if p is not None
+    ]
 
 
 def _dem_files(cfg: RunConfig) -> list[Path]:
@@ -173,13 +238,33 @@ def _dem_files(cfg: RunConfig) -> list[Path]:
 
 
 STAGES: list[Stage] = [
-    Stage("ingest", _ingest, params=lambda c: c.inputs.model_dump(mode="json", include={"stations_layer", "stations_crs"}),
-          input_files=lambda c: [c.inputs.stations], modules=("pipeline.ingest", "pipeline.io")),
-    Stage("terrain", _terrain, needs=("ingest",),
-          params=lambda c: {"basemap_px": c.outputs.map_max_basemap_px},
-          input_files=_dem_files, modules=("pipeline.terrain", "pipeline.hillshade", "pipeline.io")),
-    Stage("atmosphere", _atmosphere, needs=("terrain",),
-          params=lambda c: c.design_day.model_dump(mode="json"), modules=("pipeline.atmosphere",)),
+    Stage(
+        "ingest",
+        _ingest,
+        params=lambda c: c.inputs.model_dump(
+            mode="json", include={"stations_layer", "stations_crs"}
+        ),
+        input_files=lambda c: [c.inputs.stations],
+        modules=("pipeline.ingest", "pipeline.io"),
+    ),
+    Stage(
+        "terrain",
+        _terrain,
+        needs=("ingest",),
+        params=lambda c: {
+            "basemap_px": c.outputs.map_max_basemap_px,
+            **c.terrain.model_dump(mode="json"),
+        },
+        input_files=_dem_files,
+        modules=("pipeline.terrain", "pipeline.hillshade", "pipeline.io"),
+    ),
+    Stage(
+        "atmosphere",
+        _atmosphere,
+        needs=("terrain",),
+        params=lambda c: c.design_day.model_dump(mode="json"),
+        modules=("pipeline.atmosphere",),
+    ),
 ]
 
 
@@ -206,7 +291,9 @@ def run(
     out = Path(out_dir)
     _check_out_dir(out)
     today = today or dt.date.today()
-    result = run_stages([*STAGES, _publish_stage()], config, out, today=today, progress=progress, log=log)
+    result = run_stages(
+        [*STAGES, _publish_stage()], config, out, today=today, progress=progress, log=log
+    )
     result.manifest["outputs"] = result.manifest["counts"].pop("outputs", []) + ["manifest.json"]
     io.write_text_atomic(out / "manifest.json", json.dumps(result.manifest, indent=2, default=str))
     return result
@@ -223,7 +310,9 @@ def _check_out_dir(out: Path) -> None:
         probe.write_bytes(b"")
         probe.unlink()
     except OSError as exc:
-        raise OutputError(f"{out}: cannot write to the output folder ({exc.strerror or exc})") from None
+        raise OutputError(
+            f"{out}: cannot write to the output folder ({exc.strerror or exc})"
+        ) from None
 
 
 def validate_inputs(config: RunConfig) -> list[str]:
@@ -236,17 +325,28 @@ def validate_inputs(config: RunConfig) -> list[str]:
     """
     lines = []
     table = io.read_station_table(config.inputs.stations, config.inputs.stations_layer)
-    res = validate_stations(table, source=str(config.inputs.stations), default_crs=config.inputs.stations_crs,
-                            today=dt.date.today())
-    lines.append(f"{config.inputs.stations}: {len(table.frame)} rows, {len(res.accepted)} usable, "
-                 f"{len(res.rejected)} would be rejected")
+    res = validate_stations(
+        table,
+        source=str(config.inputs.stations),
+        default_crs=config.inputs.stations_crs,
+        today=dt.date.today(),
+    )
+    lines.append(
+        f"{config.inputs.stations}: {len(table.frame)} rows, {len(res.accepted)} usable, "
+        f"{len(res.rejected)} would be rejected"
+    )
     for _, r in res.rejected.head(10).iterrows():
         lines.append(f"  row {r['source_row']}: {r['reject_reason']}")
     with io.open_dem(config.inputs.dem) as ds:
-        lines.append(f"{config.inputs.dem}: {ds.width}×{ds.height} cells, {ds.crs.to_string()}, "
-                     f"block {ds.block_shapes[0]}")
-    for what, path in (("roads", config.inputs.roads), ("towns", config.inputs.towns),
-                       ("fleet zones", config.inputs.fleet_zones)):
+        lines.append(
+            f"{config.inputs.dem}: {ds.width}×{ds.height} cells, {ds.crs.to_string()}, "
+            f"block {ds.block_shapes[0]}"
+        )
+    for what, path in (
+        ("roads", config.inputs.roads),
+        ("towns", config.inputs.towns),
+        ("fleet zones", config.inputs.fleet_zones),
+    ):
         if path is not None:
             gdf = io.read_vector(path, what=what)
             lines.append(f"{path}: {len(gdf)} {what} features, {gdf.crs.to_string()}")

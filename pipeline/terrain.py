@@ -201,6 +201,7 @@ def sample_dem(
         pts = idx[s:e]
         v, incomplete = bilinear_sample(grid, valid, rc[pts] - r_off, ccf[pts] - c_off)
         value[pts] = v
-        status[pts] = np.where(np.isnan(v), STATUS_NODATA,
-                               np.where(incomplete, STATUS_PARTIAL, STATUS_OK))
+        status[pts] = np.where(
+            np.isnan(v), STATUS_NODATA, np.where(incomplete, STATUS_PARTIAL, STATUS_OK)
+        )
     return SampleResult(value, status.astype(str), blocks)

@@ -88,7 +88,9 @@ def test_design_temperature_is_lapse_plus_offset():
     assert atm.design_temperature_k(z, 15.0) == pytest.approx(275.15 + 15.0, abs=1e-9)
 
 
-@pytest.mark.parametrize(("t_c", "rh", "p_pa"), [(30, 0.5, 101325), (10, 0.3, 75000), (-2, 0.8, 70000), (40, 0.1, 85000)])
+@pytest.mark.parametrize(
+    ("t_c", "rh", "p_pa"), [(30, 0.5, 101325), (10, 0.3, 75000), (-2, 0.8, 70000), (40, 0.1, 85000)]
+)
 def test_humidity_ratio_matches_psychrolib(t_c, rh, p_pa):
     """Oracle: psychrolib (ASHRAE Handbook Fundamentals 2017 formulation), SI units."""
     psychrolib = pytest.importorskip("psychrolib")

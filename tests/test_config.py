@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
+from pydantic import ValidationError
 
 from pipeline.config import load_config
 from pipeline.errors import ConfigError
@@ -32,7 +33,7 @@ def test_minimal_config_resolves_relative_paths(tmp_path):
 
 def test_config_is_frozen(tmp_path):
     cfg = load_config(_write(tmp_path, MINIMAL))
-    with pytest.raises(Exception):
+    with pytest.raises(ValidationError):
         cfg.name = "other"  # type: ignore[misc]
 
 
@@ -47,7 +48,7 @@ def test_unknown_key_names_path_and_suggests(tmp_path):
 
 
 def test_wrong_type_names_key(tmp_path):
-    p = _write(tmp_path, MINIMAL + "[zones]\nresolution_m = \"fine\"\n")
+    p = _write(tmp_path, MINIMAL + '[zones]\nresolution_m = "fine"\n')
     with pytest.raises(ConfigError, match=r"zones\.resolution_m"):
         load_config(p)
 

@@ -14,7 +14,10 @@ from pipeline.ingest import validate_stations
 from pipeline.io import read_station_table
 
 TODAY = dt.date(2026, 12, 1)
-HEADER = "station_id,name,operator,lon,lat,regular_aki,premium_aki,volume_l_per_month,last_inspection_date\n"
+HEADER = (
+    "station_id,name,operator,lon,lat,regular_aki,premium_aki,volume_l_per_month,"
+    "last_inspection_date\n"
+)
 GOOD = "A1,Alpha,Op,-135.0,40.0,85,91,1000,2025-05-01\n"
 
 
@@ -86,8 +89,9 @@ def test_conflicting_duplicates_all_rejected(tmp_path):
 
 
 def test_semicolon_decimal_comma_and_cp1252(tmp_path):
-    text = ("station_id;name;lon;lat;regular_aki\n"
-            "S1;Caf\u00e9 Nord;-135,5;40,25;85,5\n").encode("cp1252")
+    text = ("station_id;name;lon;lat;regular_aki\nS1;Caf\u00e9 Nord;-135,5;40,25;85,5\n").encode(
+        "cp1252"
+    )
     res = _ingest(tmp_path, text)
     assert res.accepted["name"].iloc[0] == "Café Nord"
     assert res.accepted["lon"].iloc[0] == pytest.approx(-135.5)
@@ -123,7 +127,9 @@ def test_header_only_gives_zero_rows(tmp_path):
 
 
 def test_projected_xy_columns(tmp_path):
-    res = _ingest(tmp_path, "station_id,name,x,y,regular_aki\nS1,X,500000,4400000,86\n", crs="EPSG:32608")
+    res = _ingest(
+        tmp_path, "station_id,name,x,y,regular_aki\nS1,X,500000,4400000,86\n", crs="EPSG:32608"
+    )
     assert res.accepted["lon"].iloc[0] == pytest.approx(-135.0, abs=1e-6)
 
 
@@ -134,9 +140,17 @@ def test_projected_crs_contradicted_by_degree_values(tmp_path):
 
 def test_vector_input_with_mixed_geometries(tmp_path):
     gdf = gpd.GeoDataFrame(
-        {"station_id": ["P1", "P2", "P3", "P4"], "name": ["a", "b", "c", "d"], "regular_aki": [85, 86, 87, 85]},
-        geometry=[Point(-135, 40), MultiPoint([(-135, 40)]), MultiPoint([(-135, 40), (-134, 41)]),
-                  LineString([(0, 0), (1, 1)])],
+        {
+            "station_id": ["P1", "P2", "P3", "P4"],
+            "name": ["a", "b", "c", "d"],
+            "regular_aki": [85, 86, 87, 85],
+        },
+        geometry=[
+            Point(-135, 40),
+            MultiPoint([(-135, 40)]),
+            MultiPoint([(-135, 40), (-134, 41)]),
+            LineString([(0, 0), (1, 1)]),
+        ],
         crs="EPSG:4326",
     )
     p = tmp_path / "st.gpkg"

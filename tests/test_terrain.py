@@ -21,9 +21,20 @@ def jacksboro_tif(tmp_path_factory):
     west, north = float(d["xmin"]), float(max(d["ymin"], d["ymax"]))
     path = tmp_path_factory.mktemp("dem") / "jacksboro.tif"
     with rasterio.open(
-        path, "w", driver="GTiff", width=elev.shape[1], height=elev.shape[0], count=1,
-        dtype="float32", crs="EPSG:4326", transform=from_origin(west, north, float(d["dx"]), float(d["dy"])),
-        tiled=True, blockxsize=64, blockysize=64, compress="deflate", nodata=-32768,
+        path,
+        "w",
+        driver="GTiff",
+        width=elev.shape[1],
+        height=elev.shape[0],
+        count=1,
+        dtype="float32",
+        crs="EPSG:4326",
+        transform=from_origin(west, north, float(d["dx"]), float(d["dy"])),
+        tiled=True,
+        blockxsize=64,
+        blockysize=64,
+        compress="deflate",
+        nodata=-32768,
     ) as ds:
         ds.write(elev, 1)
     return path, elev
@@ -78,8 +89,18 @@ def _small_dem(tmp_path, nodata_cell=None, crs="EPSG:32608"):
     if nodata_cell:
         arr[nodata_cell] = -9999
     path = tmp_path / "small.tif"
-    with rasterio.open(path, "w", driver="GTiff", width=10, height=10, count=1, dtype="float32",
-                       crs=crs, transform=from_origin(0, 1000, 100, 100), nodata=-9999) as ds:
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=10,
+        height=10,
+        count=1,
+        dtype="float32",
+        crs=crs,
+        transform=from_origin(0, 1000, 100, 100),
+        nodata=-9999,
+    ) as ds:
         ds.write(arr, 1)
     return path
 
@@ -92,7 +113,13 @@ def test_outside_nodata_and_bad_coordinates_are_flagged(tmp_path):
             [550.0, 2000.0, np.nan, 250.0, 560.0],
             [450.0, 500.0, 500.0, 750.0, 420.0],
         )
-    assert list(res.status) == ["dem_nodata", "outside_dem", "bad_coordinate", "ok", "partial_nodata"]
+    assert list(res.status) == [
+        "dem_nodata",
+        "outside_dem",
+        "bad_coordinate",
+        "ok",
+        "partial_nodata",
+    ]
     assert np.isnan(res.value[:3]).all()
     # cell (2, 2) has value 22 at its centre (250, 750)
     assert res.value[3] == pytest.approx(22.0)
