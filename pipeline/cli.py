@@ -151,8 +151,8 @@ def _summary(con: _Console, result) -> None:
     m = result.manifest
     c = m["counts"]
     con.info(
-        f"stations read {c.get('rows_in')}: accepted {c.get('rows_accepted')}, "
-        f"rejected {c.get('rows_rejected')} (see layer rejected_stations)"
+        f"station rows read {c.get('rows_in')}: {c.get('stations_out')} in layer stations, "
+        f"{c.get('rejected_out')} in layer rejected_stations (each with its reason)"
     )
     for line in m.get("summary_lines", []):
         con.info(line)

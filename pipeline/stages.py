@@ -188,6 +188,8 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         raise RuntimeError(
             f"row accounting broken: {rows_in} in, {len(stations)} + {len(rejected)} out"
         )
+    ctx.counts["stations_out"] = int(len(stations))
+    ctx.counts["rejected_out"] = int(len(rejected))
     layers: dict[str, gpd.GeoDataFrame] = {"stations": stations, "rejected_stations": rejected}
     zones = up.get("zones", {}).get("justified_zones")
     if zones is not None:

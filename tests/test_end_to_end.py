@@ -1,0 +1,124 @@
+"""The demo, end to end, at reduced size: real CLI process, GeoPackage read back with GDAL."""
+
+from __future__ import annotations
+
+import csv
+import json
+
+import pyogrio
+import pytest
+from pyproj import CRS
+
+from conftest import run_cli
+
+
+def _csv_rows(path) -> int:
+    with open(path, encoding="utf-8", newline="") as f:
+        return sum(1 for _ in csv.DictReader(f))
+
+
+def test_demo_writes_geopackage_map_and_manifest(small_demo_run):
+    out, proc = small_demo_run
+    for name in ("altigrade.gpkg", "map.html", "manifest.json", "stations.csv"):
+        assert (out / name).is_file(), name
+    assert "planning aid" in proc.stdout
+
+
+def test_geopackage_layers_columns_and_crs(small_demo_run):
+    out, _ = small_demo_run
+    layers = {name for name, _ in pyogrio.list_layers(out / "altigrade.gpkg")}
+    assert {"stations", "rejected_stations"} <= layers
+    info = pyogrio.read_info(out / "altigrade.gpkg", layer="stations")
+    assert CRS.from_user_input(info["crs"]) == CRS.from_epsg(4326)
+    cols = set(info["fields"])
+    for c in ("station_id", "name", "elevation_m", "elevation_status", "pressure_kpa",
+              "pressure_psi", "design_temperature_c", "humidity_ratio_g_per_kg", "regular_aki"):
+        assert c in cols, c
+    assert info["geometry_type"] == "Point"
+
+
+def test_row_accounting_rows_in_equal_accepted_plus_rejected(small_demo_run, small_demo_inputs):
+    out, _ = small_demo_run
+    rows_in = _csv_rows(small_demo_inputs / "stations.csv")
+    st = pyogrio.read_dataframe(out / "altigrade.gpkg", layer="stations")
+    rj = pyogrio.read_dataframe(out / "altigrade.gpkg", layer="rejected_stations")
+    assert rows_in == len(st) + len(rj)
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["counts"]["rows_in"] == rows_in
+    # every source row appears exactly once across the two layers
+    seen = sorted(list(st["source_row"]) + list(rj["source_row"].astype(int)))
+    assert len(seen) == len(set(seen)) == rows_in
+
+
+def test_demo_bad_rows_are_rejected_with_reasons(small_demo_run):
+    out, _ = small_demo_run
+    rj = pyogrio.read_dataframe(out / "altigrade.gpkg", layer="rejected_stations")
+    bad = rj[rj["station_id"].str.startswith("ST-BAD")]
+    assert len(bad) >= 7
+    assert (bad["reject_reason"].str.len() > 5).all()
+    text = " | ".join(bad["reject_reason"])
+    for fragment in ("missing lat", "not a number", "AKI × 10", "volume_l_per_month", "conflicting",
+                     "outside the DEM", "after the run date"):
+        assert fragment in text, fragment
+
+
+def test_elevations_and_pressures_are_physical(small_demo_run):
+    """Demo relief spec: plain 200–500 m up to passes near 3,300 m; pressure by USSA 1976."""
+    out, _ = small_demo_run
+    st = pyogrio.read_dataframe(out / "altigrade.gpkg", layer="stations")
+    assert st["elevation_m"].between(100, 3500).all()
+    hi = st.loc[st["elevation_m"].idxmax()]
+    lo = st.loc[st["elevation_m"].idxmin()]
+    assert hi["pressure_kpa"] < lo["pressure_kpa"]
+
+
+def test_manifest_records_inputs_versions_timings(small_demo_run):
+    out, _ = small_demo_run
+    m = json.loads((out / "manifest.json").read_text())
+    assert set(m["inputs_sha256"]) and all(len(h) == 64 for h in m["inputs_sha256"].values())
+    assert "numpy" in m["package_versions"] and "GDAL (rasterio)" in m["package_versions"]
+    assert {"ingest", "terrain", "atmosphere", "publish"} <= set(m["timings_s"])
+
+
+def test_second_run_reuses_unchanged_stages(small_demo_run, demo_cache, tmp_path):
+    out, _ = small_demo_run
+    proc = run_cli("demo", "--cells", "250", "--stations", "40", "--out", str(out),
+                   "--cache-dir", str(demo_cache))
+    assert proc.returncode == 0, proc.stderr
+    m = json.loads((out / "manifest.json").read_text())
+    assert {"ingest", "terrain", "atmosphere"} <= set(m["stages_reused"])
+
+
+def test_validate_command(small_demo_inputs, tmp_path):
+    cfg = tmp_path / "run.toml"
+    cfg.write_text(
+        f'name = "v"\n[inputs]\nstations = "{small_demo_inputs / "stations.csv"}"\n'
+        f'dem = "{small_demo_inputs / "dem.tif"}"\n', encoding="utf-8")
+    proc = run_cli("validate", str(cfg))
+    assert proc.returncode == 0, proc.stderr
+    assert "would be rejected" in proc.stdout
+    assert not (tmp_path / "outputs").exists()
+
+
+@pytest.mark.parametrize(
+    ("body", "fragment"),
+    [
+        ('[inputs]\nstations = "nope.csv"\ndem = "nope.tif"\n', "nope.csv: station file not found"),
+        ('[inputs]\nstations = "s.csv"\ndem = "d.tif"\n[zones]\nresolution = 3\n', "did you mean"),
+    ],
+)
+def test_bad_config_exits_2_with_one_line(tmp_path, body, fragment):
+    cfg = tmp_path / "run.toml"
+    cfg.write_text(body, encoding="utf-8")
+    proc = run_cli("run", str(cfg), "--out", str(tmp_path / "o"))
+    assert proc.returncode == 2
+    assert fragment in proc.stderr
+    assert "Traceback" not in proc.stderr
+    assert len(proc.stderr.strip().splitlines()) == 1
+
+
+def test_help_mentions_commands_and_caution():
+    proc = run_cli("--help")
+    assert proc.returncode == 0
+    for word in ("demo", "run", "validate", "planning aid"):
+        assert word in proc.stdout
