@@ -15,11 +15,13 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from pipeline.errors import ConfigError
+from pipeline.requirement import DEFAULT_FLEET_MIX, DesignDay, FleetModelParams
 
 __all__ = [
     "RunConfig",
     "InputsConfig",
-    "DesignDayConfig",
+    "FleetMixConfig",
+    "ComplianceConfig",
     "TerrainConfig",
     "ZonesConfig",
     "OutputsConfig",
@@ -64,19 +66,42 @@ class TerrainConfig(_Frozen):
     )
 
 
-class DesignDayConfig(_Frozen):
-    """The weather under which requirements are evaluated (a planning choice)."""
+class FleetMixConfig(_Frozen):
+    """Shares of the engine classes: one default mix, optionally per zone from a polygon layer."""
 
-    temperature_offset_k: float = Field(
-        15.0,
-        ge=-40,
-        le=40,
-        description="Offset from the standard-atmosphere temperature [K]; +15 K gives 30 °C at "
-        "sea level and 12 °C at 2,500 m (a warm summer afternoon; planning choice).",
+    shares: dict[str, float] = Field(
+        default_factory=lambda: dict(DEFAULT_FLEET_MIX),
+        description="Default class shares [-] (sum 1) where no fleet zone covers a station "
+        "(from memory; replace with registration data).",
     )
-    relative_humidity_pct: float = Field(
-        30.0, ge=0, le=100, description="Relative humidity of the design day [%] (dry afternoon)."
+    zone_share_prefix: str = Field(
+        "share_", description="Fleet-zone columns holding class shares: <prefix><class name>."
     )
+    zone_name_column: str = Field("zone_name", description="Fleet-zone column naming the zone.")
+
+    @field_validator("shares")
+    @classmethod
+    def _sum_one(cls, v: dict[str, float]) -> dict[str, float]:
+        if any(x < 0 for x in v.values()) or abs(sum(v.values()) - 1.0) > 1e-3:
+            raise ValueError(f"shares must be ≥ 0 and sum to 1 (got {sum(v.values()):g})")
+        return v
+
+
+class ComplianceConfig(_Frozen):
+    """Which rule set governs the verdicts (an example unless you supply your own)."""
+
+    rule_file: Path | None = Field(
+        None, description="TOML rule set (see config/rules/); relative to the config file."
+    )
+    rule: dict[str, Any] | None = Field(
+        None, description="Inline rule set (same keys as a rule file); instead of rule_file."
+    )
+
+    @model_validator(mode="after")
+    def _one_source(self) -> ComplianceConfig:
+        if self.rule_file is not None and self.rule is not None:
+            raise ValueError("give either rule_file or rule, not both")
+        return self
 
 
 class ZonesConfig(_Frozen):
@@ -129,7 +154,10 @@ class RunConfig(_Frozen):
     name: str = Field("run", min_length=1, max_length=80)
     inputs: InputsConfig
     terrain: TerrainConfig = TerrainConfig()
-    design_day: DesignDayConfig = DesignDayConfig()
+    design_day: DesignDay = DesignDay()
+    fleet: FleetModelParams = FleetModelParams()
+    fleet_mix: FleetMixConfig = FleetMixConfig()
+    compliance: ComplianceConfig = ComplianceConfig()
     station_defaults: StationDefaultsConfig = StationDefaultsConfig()
     zones: ZonesConfig = ZonesConfig()
     outputs: OutputsConfig = OutputsConfig()
@@ -139,6 +167,12 @@ class RunConfig(_Frozen):
 
     @model_validator(mode="after")
     def _check(self) -> RunConfig:
+        unknown = [k for k in self.fleet_mix.shares if k not in self.fleet.classes]
+        if unknown:
+            raise ValueError(
+                f"fleet_mix.shares names unknown engine class(es) {unknown}; "
+                f"valid: {', '.join(self.fleet.classes)}"
+            )
         return self
 
 
@@ -196,6 +230,13 @@ def _explain(err: ValidationError, model: type[BaseModel], source: str) -> str:
 
 
 def _resolve_paths(data: dict[str, Any], base: Path, demo_dir: Path | None) -> dict[str, Any]:
+    comp = data.get("compliance")
+    if isinstance(comp, dict) and isinstance(comp.get("rule_file"), str):
+        rp = Path(comp["rule_file"]).expanduser()
+        data = {
+            **data,
+            "compliance": {**comp, "rule_file": str(rp if rp.is_absolute() else base / rp)},
+        }
     inputs = data.get("inputs")
     if not isinstance(inputs, dict):
         return data

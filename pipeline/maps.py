@@ -34,16 +34,17 @@ VERDICT_STYLE = CategoryStyle(
         "not_assessed": "#9e9e9e",
     },
     labels={
-        "meets_rule_and_justified": "Permitted and justified by the fleet model",
-        "permitted_not_justified": "Permitted by the rule, not justified by the fleet",
+        "meets_rule_and_justified": "Meets rule, fleet-justified",
+        "permitted_not_justified": "Permitted, not fleet-justified",
         "not_permitted": "Not permitted by the rule",
-        "failed_field_test": "Failed field test (tested below posted)",
-        "not_assessed": "Not assessed (missing inputs)",
+        "failed_field_test": "Failed field test",
+        "not_assessed": "Not assessed",
     },
 )
 
-#: Sequential colours for justified-AKI bands, low → high (matplotlib cividis, CVD-safe).
-ZONE_COLORS = ("#fee838", "#bcae6c", "#7d7c78", "#434e6c", "#00224e")
+#: Sequential colours for justified-AKI bands, low → high (ColorBrewer YlGnBu, a sequential
+#: scheme marked colour-blind safe by Brewer; hex values from memory).
+ZONE_COLORS = ("#ffffcc", "#a1dab4", "#41b6c4", "#2c7fb8", "#253494")
 
 STATION_POPUP = (
     ("station_id", "Station id"),

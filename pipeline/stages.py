@@ -144,6 +144,184 @@ def _atmosphere(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, A
     return {"stations": st}
 
 
+# -------------------------------------------------------------------------------- fleet
+GRADES = (("regular", "regular_aki"), ("midgrade", "midgrade_aki"), ("premium", "premium_aki"))
+
+
+def _read_fleet_zones(cfg: RunConfig) -> gpd.GeoDataFrame | None:
+    if cfg.inputs.fleet_zones is None:
+        return None
+    zones = io.read_vector(cfg.inputs.fleet_zones, what="fleet zones")
+    prefix = cfg.fleet_mix.zone_share_prefix
+    cols = [f"{prefix}{n}" for n in cfg.fleet.classes]
+    missing = [c for c in cols if c not in zones.columns]
+    if len(missing) == len(cols):
+        raise InputFileError(
+            f"{cfg.inputs.fleet_zones}: no share columns {', '.join(cols)} "
+            f"(fleet_mix.zone_share_prefix = {prefix!r})"
+        )
+    shares = zones[[c for c in cols if c in zones.columns]].astype(float)
+    bad = (
+        (shares < 0).any(axis=1)
+        | ((shares.sum(axis=1) - 1).abs() > 1e-3)
+        | shares.isna().any(axis=1)
+    )
+    if bad.any():
+        i = int(np.flatnonzero(bad.to_numpy())[0])
+        raise InputFileError(
+            f"{cfg.inputs.fleet_zones}: feature {i + 1} has class shares that are negative, "
+            f"missing or do not sum to 1"
+        )
+    for c in missing:
+        zones[c] = 0.0
+    return zones
+
+
+def _fleet(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Adds the fleet mix (``fleet_zone``, ``fleet_share_<class>``), ``justified_aki`` (posted,
+    rounded up), ``justified_aki_unrounded``, ``justified_aki_p05/p50/p95`` (coefficient
+    uncertainty), and per grade sold ``<grade>_share_satisfied_pct``,
+    ``<grade>_break_even_elevation_m``, ``<grade>_break_even_status``."""
+    from pipeline import requirement as rq
+
+    cfg = ctx.config
+    st = up["atmosphere"]["stations"].copy()
+    require_columns(st, ("elevation_m", "regular_aki"), "fleet")
+    params = cfg.fleet
+    names = params.class_names
+    n = len(st)
+    mix = np.broadcast_to(rq.mix_array(dict(cfg.fleet_mix.shares), params), (n, len(names))).copy()
+    zone_name = np.full(n, "default mix", dtype=object)
+    zones = _read_fleet_zones(cfg)
+    if zones is not None and n:
+        zj = gpd.sjoin(st[[st.geometry.name]], zones.to_crs(st.crs), how="left", predicate="within")
+        zj = zj[~zj.index.duplicated(keep="first")]
+        hit = zj["index_right"].notna().to_numpy()
+        prefix = cfg.fleet_mix.zone_share_prefix
+        for k, cname in enumerate(names):
+            col = zj[f"{prefix}{cname}"].to_numpy(float)
+            mix[hit, k] = col[hit]
+        zcol = cfg.fleet_mix.zone_name_column
+        if zcol in zj.columns:
+            zone_name[hit] = zj.loc[hit, zcol].astype(str).to_numpy()
+        else:
+            zone_name[hit] = [f"zone {int(i) + 1}" for i in zj.loc[hit, "index_right"]]
+        mix = rq.mix_array(mix, params)
+    st["fleet_zone"] = zone_name
+    for k, cname in enumerate(names):
+        st[f"fleet_share_{cname}"] = np.round(mix[:, k], 4)
+    z = st["elevation_m"].to_numpy(float)
+    cond = rq.design_conditions(z, cfg.design_day, params.reference)
+    ja = rq.justified_aki(mix, params, cond)
+    band = rq.justified_aki_band(mix, params, cond)
+    st["justified_aki"] = np.asarray(ja.posted_aki, dtype=float)
+    st["justified_aki_unrounded"] = np.round(np.asarray(ja.aki, dtype=float), 2)
+    st["justified_aki_p05"] = np.round(np.asarray(band.low_aki, dtype=float), 2)
+    st["justified_aki_p50"] = np.round(np.asarray(band.median_aki, dtype=float), 2)
+    st["justified_aki_p95"] = np.round(np.asarray(band.high_aki, dtype=float), 2)
+    for grade, col in GRADES:
+        if col not in st.columns:
+            continue
+        g = st[col].to_numpy(float)
+        share = rq.share_satisfied(g, mix, params, cond)
+        st[f"{grade}_share_satisfied_pct"] = np.round(100 * np.asarray(share, dtype=float), 1)
+        be = rq.break_even_elevation(g, mix, params, design=cfg.design_day)
+        st[f"{grade}_break_even_elevation_m"] = np.round(np.asarray(be.elevation_m, dtype=float), 0)
+        st[f"{grade}_break_even_status"] = np.where(np.isnan(g), "not_sold", np.asarray(be.status))
+    ctx.counts["justified_aki_counts"] = {
+        f"{k:g}": int(v) for k, v in st["justified_aki"].value_counts().sort_index().items()
+    }
+    return {"stations": st}
+
+
+# -------------------------------------------------------------------------------- zones
+def _zones(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Makes ``justified_zones`` (DEM CRS): bands of justified minimum AKI."""
+    from pipeline.zones import justified_zones
+
+    cfg = ctx.config
+    if not cfg.zones.enabled:
+        return {}
+    with io.open_dem(cfg.inputs.dem) as ds:
+        gdf, stats = justified_zones(
+            ds,
+            params=cfg.fleet,
+            design=cfg.design_day,
+            default_mix=cfg.fleet_mix.shares,
+            fleet_zones=_read_fleet_zones(cfg),
+            share_prefix=cfg.fleet_mix.zone_share_prefix,
+            band_edges=cfg.zones.band_edges_aki,
+            resolution_m=cfg.zones.resolution_m,
+            tile_cells=cfg.zones.tile_cells,
+            progress=lambda f: ctx.progress("zones", f),
+        )
+    ctx.counts["zones"] = stats
+    return {"justified_zones": gdf}
+
+
+# --------------------------------------------------------------------------- compliance
+def load_rule_set(cfg: RunConfig):
+    """The configured rule set (rule file or inline table); an example rule when neither."""
+    import tomllib
+
+    from pipeline.compliance import rule_set_from_mapping
+    from pipeline.errors import ConfigError
+
+    c = cfg.compliance
+    if c.rule is not None:
+        return rule_set_from_mapping(c.rule)
+    path = c.rule_file or (
+        Path(__file__).resolve().parent.parent
+        / "config"
+        / "rules"
+        / "example_elevation_threshold.toml"
+    )
+    try:
+        data = tomllib.loads(Path(path).read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise ConfigError(f"{path}: cannot read the rule file ({exc.strerror or exc})") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML ({exc})") from None
+    try:
+        return rule_set_from_mapping(data)
+    except ConfigError as exc:
+        raise ConfigError(f"{path}: {exc}") from None
+
+
+def _compliance(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Adds ``verdict``, ``verdict_reason``, ``rule_minimum_aki``, ``rule_permits``,
+    ``fleet_justifies``, ``field_test_failed`` under the configured rule set."""
+    from pipeline.compliance import assess_compliance
+
+    cfg = ctx.config
+    st = up["fleet"]["stations"].copy()
+    require_columns(st, ("regular_aki", "elevation_m", "justified_aki_unrounded"), "compliance")
+    rule = load_rule_set(cfg)
+    frame = pd.DataFrame(
+        {
+            "regular_aki": st["regular_aki"],
+            "elevation_m": st["elevation_m"],
+            "justified_aki": st["justified_aki_unrounded"],
+            "field_test_aki": st["field_test_aki"] if "field_test_aki" in st.columns else np.nan,
+        }
+    )
+    res = assess_compliance(
+        frame, rule, target_share=cfg.fleet.target_share, step_aki=cfg.fleet.posting_step_aki
+    )
+    st["verdict"] = res["verdict"].to_numpy()
+    st["verdict_reason"] = res["reason"].to_numpy()
+    st["rule_minimum_aki"] = res["rule_minimum_aki"].to_numpy(float)
+    for src, dst in (
+        ("rule_permits", "rule_permits"),
+        ("fleet_justified", "fleet_justifies"),
+        ("field_test_failed", "field_test_failed"),
+    ):
+        st[dst] = res[src].map({True: "yes", False: "no"}).fillna("unknown").to_numpy()
+    ctx.counts["rule_set"] = {"name": rule.name, "kind": rule.kind}
+    ctx.counts["verdicts"] = {k: int(v) for k, v in st["verdict"].value_counts().items()}
+    return {"stations": st}
+
+
 # ------------------------------------------------------------------------------ publish
 #: Column order of the published stations layer (present columns first, in this order).
 STATION_COLUMNS_FIRST = (
@@ -216,7 +394,7 @@ def _station_map(ctx, up, stations, zones, rejected) -> str | None:
     return station_map_html(ctx, up, stations, zones, rejected)
 
 
-_LAST_STATION_STAGE = "atmosphere"
+_LAST_STATION_STAGE = "compliance"
 
 
 def _inputs(cfg: RunConfig) -> list[Path]:
@@ -266,6 +444,44 @@ STAGES: list[Stage] = [
         needs=("terrain",),
         params=lambda c: c.design_day.model_dump(mode="json"),
         modules=("pipeline.atmosphere",),
+    ),
+    Stage(
+        "fleet",
+        _fleet,
+        needs=("atmosphere",),
+        params=lambda c: {
+            "fleet": c.fleet.model_dump(mode="json"),
+            "mix": c.fleet_mix.model_dump(mode="json"),
+            "design_day": c.design_day.model_dump(mode="json"),
+        },
+        input_files=lambda c: [c.inputs.fleet_zones] if c.inputs.fleet_zones else [],
+        modules=("pipeline.requirement", "pipeline.octane"),
+    ),
+    Stage(
+        "zones",
+        _zones,
+        needs=(),
+        params=lambda c: {
+            "zones": c.zones.model_dump(mode="json"),
+            "fleet": c.fleet.model_dump(mode="json"),
+            "mix": c.fleet_mix.model_dump(mode="json"),
+            "design_day": c.design_day.model_dump(mode="json"),
+        },
+        input_files=lambda c: (
+            _dem_files(c) + ([c.inputs.fleet_zones] if c.inputs.fleet_zones else [])
+        ),
+        modules=("pipeline.zones", "pipeline.requirement"),
+    ),
+    Stage(
+        "compliance",
+        _compliance,
+        needs=("fleet",),
+        params=lambda c: {
+            "compliance": c.compliance.model_dump(mode="json"),
+            "fleet": c.fleet.model_dump(mode="json", include={"target_share", "posting_step_aki"}),
+        },
+        input_files=lambda c: [c.compliance.rule_file] if c.compliance.rule_file else [],
+        modules=("pipeline.compliance",),
     ),
 ]
 

@@ -28,7 +28,7 @@ def test_minimal_config_resolves_relative_paths(tmp_path):
     cfg = load_config(_write(tmp_path, MINIMAL))
     assert cfg.inputs.stations == tmp_path / "st.csv"
     assert cfg.inputs.dem == tmp_path / "dem.tif"
-    assert cfg.design_day.temperature_offset_k == 15.0
+    assert cfg.design_day.temperature_offset_k == 10.0  # default design day: 25 °C at sea level
 
 
 def test_config_is_frozen(tmp_path):

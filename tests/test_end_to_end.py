@@ -35,6 +35,12 @@ def test_geopackage_layers_columns_and_crs(small_demo_run):
               "pressure_psi", "design_temperature_c", "humidity_ratio_g_per_kg", "regular_aki"):
         assert c in cols, c
     assert info["geometry_type"] == "Point"
+    for c in ("fleet_zone", "fleet_share_legacy", "justified_aki", "justified_aki_p05",
+              "justified_aki_p95", "regular_share_satisfied_pct", "regular_break_even_elevation_m",
+              "verdict", "verdict_reason"):
+        assert c in cols, c
+    zinfo = pyogrio.read_info(out / "altigrade.gpkg", layer="justified_zones")
+    assert zinfo["features"] >= 2 and "band_label" in zinfo["fields"]
 
 
 def test_row_accounting_rows_in_equal_accepted_plus_rejected(small_demo_run, small_demo_inputs):
@@ -70,6 +76,19 @@ def test_elevations_and_pressures_are_physical(small_demo_run):
     hi = st.loc[st["elevation_m"].idxmax()]
     lo = st.loc[st["elevation_m"].idxmin()]
     assert hi["pressure_kpa"] < lo["pressure_kpa"]
+
+
+def test_high_stations_get_lower_justified_aki(small_demo_run):
+    """Behaviour the fleet model must show (docs/requirement_model.md): relief with altitude."""
+    out, _ = small_demo_run
+    st = pyogrio.read_dataframe(out / "altigrade.gpkg", layer="stations")
+    low = st[st["elevation_m"] < 600]["justified_aki_unrounded"]
+    high = st[st["elevation_m"] > 2300]["justified_aki_unrounded"]
+    assert len(low) and len(high)
+    assert high.max() < low.min()
+    assert (st["justified_aki_p05"] <= st["justified_aki_unrounded"] + 1e-9).all()
+    assert (st["justified_aki_p95"] >= st["justified_aki_unrounded"] - 1e-9).all()
+    assert st["verdict_reason"].str.contains("AKI").all()
 
 
 def test_manifest_records_inputs_versions_timings(small_demo_run):
