@@ -19,6 +19,7 @@ import pandas as pd
 
 from pipeline import atmosphere, io, terrain
 from pipeline.config import RunConfig
+from pipeline.errors import InputFileError
 from pipeline.ingest import validate_stations
 from pipeline.runner import RunResult, Stage, StageContext, run_stages
 
@@ -384,8 +385,31 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     if html is not None:
         io.write_text_atomic(out / "map.html", html)
         outputs.append("map.html")
+    report = _report_html(ctx, stations, rejected)
+    io.write_text_atomic(out / "report.html", report)
+    outputs.append("report.html")
     ctx.counts["outputs"] = outputs
     return {"stations": stations, "rejected_stations": rejected}
+
+
+def _report_html(ctx: StageContext, stations, rejected) -> str:
+    from pipeline.report import build_report_html
+
+    cfg = ctx.config
+    manifest = {
+        "config": cfg.model_dump(mode="json"),
+        "inputs_sha256": ctx.counts.get("inputs_sha256"),
+    }
+    return build_report_html(
+        title=f"altigrade report — {cfg.name}",
+        stations=pd.DataFrame(stations.drop(columns=stations.geometry.name)),
+        rejected=pd.DataFrame(rejected.drop(columns=rejected.geometry.name)),
+        params=cfg.fleet,
+        default_mix=cfg.fleet_mix.shares,
+        design=cfg.design_day,
+        manifest=manifest,
+        generated_note=f"Run date {ctx.today.isoformat()} · altigrade",
+    )
 
 
 def _station_map(ctx, up, stations, zones, rejected) -> str | None:
