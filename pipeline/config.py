@@ -14,6 +14,7 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from pipeline.corridors import CorridorParams
 from pipeline.errors import ConfigError
 from pipeline.requirement import DEFAULT_FLEET_MIX, DesignDay, FleetModelParams
 
@@ -22,6 +23,7 @@ __all__ = [
     "InputsConfig",
     "FleetMixConfig",
     "ComplianceConfig",
+    "CorridorsConfig",
     "TerrainConfig",
     "ZonesConfig",
     "OutputsConfig",
@@ -104,6 +106,36 @@ class ComplianceConfig(_Frozen):
         return self
 
 
+class CorridorsConfig(_Frozen):
+    """Descent corridors: where sub-standard fuel from high stations is driven."""
+
+    enabled: bool = True
+    model: CorridorParams = Field(default_factory=CorridorParams)
+    snap_distance_m: float = Field(
+        1000.0, gt=0, description="Largest station/town distance to the road network [m]."
+    )
+    destinations: Literal["towns", "stations"] = Field(
+        "towns",
+        description="Where fuel is driven: towns weighted by population (needs inputs.towns), "
+        "or the other stations weighted by volume.",
+    )
+    climb_grade_threshold_pct: float = Field(
+        4.0, gt=0, description="Grade above which a climb counts as sustained [%]."
+    )
+    full_load_climb_m: float = Field(
+        150.0,
+        gt=0,
+        description="Sustained climb [m] at which the full sustained-load increment applies; "
+        "shorter climbs get a proportional share (planning choice).",
+    )
+    fallback_grid_cells: int = Field(
+        800,
+        ge=50,
+        le=4000,
+        description="Without a road layer: routing-grid size for DEM-derived roads [cells/side].",
+    )
+
+
 class ZonesConfig(_Frozen):
     """Justified-AKI zones over the DEM."""
 
@@ -159,6 +191,7 @@ class RunConfig(_Frozen):
     fleet_mix: FleetMixConfig = FleetMixConfig()
     compliance: ComplianceConfig = ComplianceConfig()
     station_defaults: StationDefaultsConfig = StationDefaultsConfig()
+    corridors: CorridorsConfig = CorridorsConfig()
     zones: ZonesConfig = ZonesConfig()
     outputs: OutputsConfig = OutputsConfig()
     execution: ExecutionConfig = ExecutionConfig()
@@ -247,7 +280,8 @@ def _resolve_paths(data: dict[str, Any], base: Path, demo_dir: Path | None) -> d
         if value.startswith("{demo}"):
             if demo_dir is None:
                 raise ConfigError(
-                    f"key 'inputs.{key}' uses the {{demo}} folder, which only `altigrade demo` provides"
+                    f"key 'inputs.{key}' uses the {{demo}} folder, which only "
+                    "`altigrade demo` provides"
                 )
             out[key] = str(demo_dir / value.removeprefix("{demo}").lstrip("/"))
         else:

@@ -59,8 +59,54 @@ STATION_POPUP = (
     ("regular_share_satisfied_pct", "Fleet satisfied by regular [%]"),
     ("regular_break_even_elevation_m", "Regular break-even elevation [m]"),
     ("fleet_zone", "Fleet zone"),
+    ("export_risk_l_aki_per_month", "Descent-corridor risk [L·AKI/month]"),
+    ("fuel_share_in_deficit", "Share of its fuel driven in deficit [0–1]"),
+    ("corridor_required_aki", "AKI its corridors need [AKI]"),
     ("verdict_reason", "Verdict"),
 )
+
+#: Colour-blind-safe sequential ramp for corridor risk (matplotlib magma, reversed; light → dark).
+RISK_COLORS = ("#fec287", "#f1605d", "#b5367a", "#3b0f70")
+
+
+def corridor_layer(corridors: gpd.GeoDataFrame) -> MapLayer | None:
+    """Corridors drawn by risk: width and a colour ramp by ``risk_l_aki_per_month``."""
+    if corridors is None or not len(corridors):
+        return None
+    risk = corridors["risk_l_aki_per_month"].to_numpy(float)
+    pos = risk[risk > 0]
+    if pos.size >= 3:
+        b = np.unique(np.round(np.quantile(pos, [0.5, 0.8, 0.95]), -1))
+        breaks = tuple(float(x) for x in b if x > 0) or (1.0,)
+    else:
+        breaks = (1.0,)
+    colors = (
+        RISK_COLORS[-(len(breaks) + 1) :] if len(breaks) + 1 <= len(RISK_COLORS) else RISK_COLORS
+    )
+    return MapLayer(
+        name="Descent corridors (risk)",
+        gdf=corridors,
+        style=RampStyle(
+            column="risk_l_aki_per_month",
+            breaks=breaks,
+            colors=tuple(colors),
+            width_range=(2.0, 8.0),
+            label_fmt="{:,.0f}",
+            unit="L·AKI/month",
+        ),
+        popup_fields=_present(
+            corridors,
+            (
+                ("risk_l_aki_per_month", "Risk [L·AKI/month]"),
+                ("flow_l_per_month", "Sub-standard fuel carried [L/month]"),
+                ("deficit_aki", "Requirement deficit [AKI]"),
+                ("required_aki", "Fleet requirement here [AKI]"),
+                ("direction", "Direction of the flow"),
+                ("sources_count", "Source stations"),
+                ("length_m", "Length [m]"),
+            ),
+        ),
+    )
 
 
 def basemap_of(terrain_artefacts: dict[str, Any]) -> Basemap | None:
@@ -104,6 +150,7 @@ def station_map_spec(
     *,
     zones: gpd.GeoDataFrame | None,
     roads: gpd.GeoDataFrame | None,
+    corridors: gpd.GeoDataFrame | None = None,
     towns: gpd.GeoDataFrame | None,
     rejected: gpd.GeoDataFrame | None,
     basemap: Basemap | None,
@@ -111,7 +158,7 @@ def station_map_spec(
     subtitle: str,
     generated_note: str = "",
 ) -> MapSpec:
-    """The stations map: justified-AKI zones, roads, towns, stations by verdict."""
+    """The stations map: justified-AKI zones, roads, towns, corridors, stations by verdict."""
     layers: list[MapLayer] = []
     if zones is not None and len(zones):
         layers.append(
@@ -160,6 +207,9 @@ def station_map_spec(
                 searchable_fields=("name",) if "name" in towns.columns else (),
             )
         )
+    cl = corridor_layer(corridors)
+    if cl is not None:
+        layers.append(cl)
     st_style = VERDICT_STYLE if "verdict" in stations.columns else None
     layers.append(
         MapLayer(
@@ -215,6 +265,7 @@ def station_map_html(ctx, up: dict[str, dict[str, Any]], stations, zones, reject
         roads=roads,
         towns=towns,
         rejected=rejected,
+        corridors=up.get("corridors", {}).get("corridors"),
         basemap=basemap_of(up.get("terrain", {})),
         title=f"Minimum gasoline AKI by station — {cfg.name}",
         subtitle="Elevation, barometric pressure, justified minimum AKI and verdicts",

@@ -19,6 +19,7 @@ import pandas as pd
 
 from pipeline import atmosphere, io, terrain
 from pipeline.config import RunConfig
+from pipeline.corridor_stage import corridors_stage
 from pipeline.errors import InputFileError
 from pipeline.ingest import validate_stations
 from pipeline.runner import RunResult, Stage, StageContext, run_stages
@@ -373,6 +374,9 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     zones = up.get("zones", {}).get("justified_zones")
     if zones is not None:
         layers["justified_zones"] = zones
+    corridors = up.get("corridors", {}).get("corridors")
+    if corridors is not None:
+        layers["corridors"] = corridors
     out = ctx.out_dir
     crs = ctx.config.outputs.crs
     io.write_gpkg_layers(out / "altigrade.gpkg", layers, crs)
@@ -418,7 +422,7 @@ def _station_map(ctx, up, stations, zones, rejected) -> str | None:
     return station_map_html(ctx, up, stations, zones, rejected)
 
 
-_LAST_STATION_STAGE = "compliance"
+_LAST_STATION_STAGE = "corridors"
 
 
 def _inputs(cfg: RunConfig) -> list[Path]:
@@ -506,6 +510,26 @@ STAGES: list[Stage] = [
         },
         input_files=lambda c: [c.compliance.rule_file] if c.compliance.rule_file else [],
         modules=("pipeline.compliance",),
+    ),
+    Stage(
+        "corridors",
+        corridors_stage,
+        needs=("compliance",),
+        params=lambda c: {
+            "corridors": c.corridors.model_dump(mode="json"),
+            "fleet": c.fleet.model_dump(mode="json"),
+            "mix": c.fleet_mix.model_dump(mode="json"),
+            "design_day": c.design_day.model_dump(mode="json"),
+            "defaults": c.station_defaults.model_dump(mode="json"),
+        },
+        input_files=lambda c: _dem_files(c) + [p for p in (c.inputs.roads, c.inputs.towns) if p],
+        modules=(
+            "pipeline.corridor_stage",
+            "pipeline.roadgraph",
+            "pipeline.corridors",
+            "pipeline.requirement",
+            "pipeline.terrain_routes",
+        ),
     ),
 ]
 

@@ -91,6 +91,22 @@ def test_high_stations_get_lower_justified_aki(small_demo_run):
     assert st["verdict_reason"].str.contains("AKI").all()
 
 
+def test_corridors_layer_and_station_export_columns(small_demo_run):
+    """Issue C behaviour on the demo: only sub-standard regular exports corridor risk."""
+    out, _ = small_demo_run
+    layers = {name for name, _ in pyogrio.list_layers(out / "altigrade.gpkg")}
+    assert "corridors" in layers
+    cor = pyogrio.read_dataframe(out / "altigrade.gpkg", layer="corridors")
+    assert len(cor) and (cor["risk_l_aki_per_month"] >= 0).all()
+    assert set(cor["direction"]) <= {"forward", "reverse", "both"}
+    st = pyogrio.read_dataframe(out / "altigrade.gpkg", layer="stations")
+    std = st[st["regular_aki"] >= 87]
+    assert (std["export_risk_l_aki_per_month"].fillna(0) == 0).all()
+    sub = st[(st["regular_aki"] < 87) & (st["corridor_status"] == "source")]
+    assert len(sub) and (sub["export_risk_l_aki_per_month"] > 0).any()
+    assert sub["corridor_required_aki"].between(85, 87).all()
+
+
 def test_manifest_records_inputs_versions_timings(small_demo_run):
     out, _ = small_demo_run
     m = json.loads((out / "manifest.json").read_text())

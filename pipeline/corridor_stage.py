@@ -1,0 +1,193 @@
+"""The corridors stage: road graph, edge profiles, flows of sub-standard fuel and their risk.
+
+Kept apart from ``stages.py`` because it is the largest stage; orchestration only — the
+calculation is in :mod:`pipeline.roadgraph`, :mod:`pipeline.corridors` and
+:mod:`pipeline.requirement`.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+from rasterio.enums import Resampling
+
+from pipeline import io, terrain
+from pipeline import requirement as rq
+from pipeline.config import RunConfig
+from pipeline.corridors import compute_corridors, corridor_lines
+from pipeline.errors import InputFileError
+from pipeline.roadgraph import build_road_graph, edge_profiles, snap_points
+
+__all__ = ["corridors_stage", "requirement_function", "derived_roads"]
+
+
+def requirement_function(cfg: RunConfig):
+    """The fleet's requirement on a road, for :func:`pipeline.corridors.compute_corridors`.
+
+    ``f(elevation_m, uphill_grade_pct, sustained_climb_m) -> AKI``: the justified (target-share,
+    unrounded) AKI of the default fleet mix on the design day at that elevation, with the
+    sustained-load increment scaled by min(1, sustained climb / ``full_load_climb_m``) where the
+    grade is at or above ``climb_grade_threshold_pct``.
+    """
+    params = cfg.fleet
+    mix = rq.mix_array(dict(cfg.fleet_mix.shares), params)
+    c = cfg.corridors
+
+    def required_aki(elevation_m, uphill_grade_pct, sustained_climb_m):
+        z = np.asarray(elevation_m, dtype=float)
+        g = np.broadcast_to(np.asarray(uphill_grade_pct, dtype=float), z.shape)
+        climb = np.broadcast_to(np.asarray(sustained_climb_m, dtype=float), z.shape)
+        with np.errstate(invalid="ignore"):
+            load = np.where(
+                g >= c.climb_grade_threshold_pct,
+                np.clip(np.nan_to_num(climb) / c.full_load_climb_m, 0.0, 1.0),
+                0.0,
+            )
+        cond = rq.design_conditions(z.ravel(), cfg.design_day, params.reference)
+        cond = cond._replace(
+            sustained_load=np.maximum(load.ravel(), float(cfg.design_day.sustained_load))
+        )
+        out = np.asarray(rq.justified_aki(mix, params, cond).aki, dtype=float)
+        return out.reshape(z.shape)
+
+    return required_aki
+
+
+def derived_roads(ds, endpoints_xy: np.ndarray, grid_cells: int) -> gpd.GeoDataFrame:
+    """Fallback without a road layer: least-cost routes over the DEM between the endpoints."""
+    from pipeline.terrain_routes import build_terrain_routes
+
+    f = max(1, int(np.ceil(max(ds.width, ds.height) / grid_cells)))
+    shape = (int(np.ceil(ds.height / f)), int(np.ceil(ds.width / f)))
+    elev = ds.read(1, out_shape=shape, resampling=Resampling.average, masked=True)
+    z = np.asarray(elev.filled(np.nan), dtype=float)
+    transform = ds.transform * ds.transform.scale(ds.width / shape[1], ds.height / shape[0])
+    ok = np.all(np.isfinite(endpoints_xy), axis=1)
+    pts = [tuple(p) for p in endpoints_xy[ok]]
+    if len(pts) < 2:
+        return gpd.GeoDataFrame({"road_class": []}, geometry=[], crs=ds.crs)
+    net = build_terrain_routes(z, transform, pts, max_grid_cells=None)
+    geoms = [s.geometry for s in net.segments]
+    return gpd.GeoDataFrame({"road_class": ["derived"] * len(geoms)}, geometry=geoms, crs=ds.crs)
+
+
+def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Adds ``export_risk_l_aki_per_month``, ``fuel_share_in_deficit``, ``corridor_status``,
+    ``corridor_required_aki``, ``road_snap_m``; makes the ``corridors`` lines (graph CRS)."""
+    cfg: RunConfig = ctx.config
+    st = up["compliance"]["stations"].copy()
+    cc = cfg.corridors
+    if not cc.enabled or len(st) == 0:
+        return {"stations": st}
+    towns = io.read_vector(cfg.inputs.towns, what="towns") if cfg.inputs.towns else None
+    if cc.destinations == "towns" and towns is None:
+        raise InputFileError("corridors.destinations = 'towns' needs inputs.towns")
+    if towns is not None and cc.destinations == "towns" and "population" not in towns.columns:
+        raise InputFileError(f"{cfg.inputs.towns}: the towns layer needs a 'population' column")
+    with io.open_dem(cfg.inputs.dem) as ds:
+        if cfg.inputs.roads is not None:
+            roads = io.read_vector(cfg.inputs.roads, what="roads")
+            source = "road layer"
+        else:
+            sx, sy = terrain.transform_points(st["lon"], st["lat"], "EPSG:4326", ds.crs)
+            pts = [np.column_stack([sx, sy])]
+            if towns is not None:
+                tt = towns.to_crs(ds.crs)
+                pts.append(np.column_stack([tt.geometry.x, tt.geometry.y]))
+            roads = derived_roads(ds, np.vstack(pts), cc.fallback_grid_cells)
+            source = "derived from the DEM (no road layer)"
+        ctx.progress("corridors", 0.1)
+        graph = build_road_graph(roads)
+        profiles = edge_profiles(graph, ds, climb_grade_threshold_pct=cc.climb_grade_threshold_pct)
+    ctx.progress("corridors", 0.4)
+    sx, sy = terrain.transform_points(st["lon"], st["lat"], "EPSG:4326", graph.crs)
+    node, dist, snapped = snap_points(graph, np.column_stack([sx, sy]), cc.snap_distance_m)
+    vol = (
+        st["volume_l_per_month"].to_numpy(float)
+        if "volume_l_per_month" in st
+        else np.zeros(len(st))
+    )
+    share = (
+        st["regular_share"].to_numpy(float) if "regular_share" in st else np.full(len(st), np.nan)
+    )
+    share = np.where(np.isfinite(share), share, cfg.station_defaults.regular_share)
+    sources = pd.DataFrame(
+        {
+            "node": np.where(snapped, node, -1),
+            "volume_l": np.nan_to_num(vol) * share,
+            "aki": st["regular_aki"].to_numpy(float),
+            "id": st["station_id"].astype(str).to_numpy(),
+        }
+    )
+    dests = None
+    if cc.destinations == "towns":
+        tt = towns.to_crs(graph.crs)
+        tn, _, tsnap = snap_points(
+            graph, np.column_stack([tt.geometry.x, tt.geometry.y]), cc.snap_distance_m
+        )
+        dests = pd.DataFrame({"node": tn[tsnap], "weight": tt["population"].to_numpy(float)[tsnap]})
+        ctx.counts["towns_snapped"] = int(tsnap.sum())
+        ctx.counts["towns_not_snapped"] = int((~tsnap).sum())
+    req = requirement_function(cfg)
+    res = compute_corridors(graph, profiles, sources, dests, req, cc.model)
+    ctx.progress("corridors", 0.7)
+    srow = res.stations.reset_index(drop=True)
+    st["road_snap_m"] = np.round(dist, 1)
+    st["export_risk_l_aki_per_month"] = np.round(
+        srow["export_risk_l_aki_per_month"].to_numpy(float), 1
+    )
+    st["fuel_share_in_deficit"] = np.round(srow["fuel_share_in_deficit"].to_numpy(float), 4)
+    status = srow["status"].astype(str).to_numpy()
+    st["corridor_status"] = np.where(~snapped, "not_on_road_network", status)
+    sending = srow["status"].astype(str).to_numpy() == "source"
+    share_now = np.where(sending, srow["fuel_share_in_deficit"].to_numpy(float), np.nan)
+    st["corridor_required_aki"] = _corridor_required(
+        graph, profiles, sources, dests, req, cfg, share_now
+    )
+    lines = corridor_lines(graph, res)
+    ctx.counts["road_graph"] = {
+        k: v for k, v in graph.stats.items() if not isinstance(v, dict | list)
+    }
+    ctx.counts["road_source"] = source
+    ctx.counts["corridor_edges"] = int(len(lines))
+    ctx.counts["stations_not_on_roads"] = int((~snapped).sum())
+    return {"stations": st, "corridors": lines}
+
+
+def _corridor_required(graph, profiles, sources, dests, req, cfg, share_now) -> np.ndarray:
+    """Lowest posting-grid AKI whose exported fuel stays out of deficit on at least the target
+    share of its driving (volume × distance), capped at the sea-level standard.
+
+    Re-runs the flows with each exporting station's regular raised to each candidate grade,
+    from its posted AKI up to the sea-level standard; the first candidate whose
+    ``fuel_share_in_deficit`` is at most 1 − ``fleet.target_share`` is the answer. NaN where
+    the station sends no sub-standard fuel.
+    """
+    std = cfg.corridors.model.sea_level_standard_aki
+    step = cfg.fleet.posting_step_aki
+    allowed = 1.0 - cfg.fleet.target_share
+    aki = sources["aki"].to_numpy(float)
+    out = np.full(len(sources), np.nan)
+    exporting = np.isfinite(share_now)
+    out[exporting] = std
+    ok_now = exporting & (share_now <= allowed)
+    out[ok_now] = np.ceil(aki[ok_now] / step - 1e-9) * step
+    done = ~exporting | ok_now
+    if done.all():
+        return out
+    lo = np.nanmin(aki[~done])
+    for cand in np.arange(np.ceil(lo / step) * step + step, std, step):
+        trial = sources.copy()
+        raise_to = ~done & (aki < cand)
+        if not raise_to.any():
+            continue
+        trial.loc[raise_to, "aki"] = cand
+        r = compute_corridors(graph, profiles, trial, dests, req, cfg.corridors.model)
+        share = r.stations.reset_index(drop=True)["fuel_share_in_deficit"].to_numpy(float)
+        clear = raise_to & (share <= allowed)
+        out[clear] = cand
+        done |= clear
+    return out

@@ -1,0 +1,1369 @@
+"""Routable road graph, edge elevation profiles and point snapping.
+
+A pure calculation module (it never opens files; the DEM comes in as an open rasterio dataset).
+
+Three stages, each taking the previous stage's output:
+
+1. :func:`build_road_graph` — LineStrings in any CRS → a noded, routable :class:`RoadGraph` in a
+   metric CRS (node coordinates, edges ``u → v`` with lengths [m], geometry, attributes and a
+   ``scipy.sparse`` CSR adjacency).
+2. :func:`edge_profiles` — the DEM sampled along every edge at the DEM's own resolution (one
+   block-wise call of :func:`pipeline.terrain.sample_dem` for all edges): elevation statistics
+   and, per direction of travel, climb, mean uphill grade and the longest sustained climb.
+3. :func:`snap_points` — points (stations, towns) → nearest graph node.
+
+:func:`graph_from_edges` builds a :class:`RoadGraph` directly from node coordinates and edge
+lists (synthetic graphs, tests, benchmarks).
+
+Lines without attributes (e.g. the DEM-derived fallback network of
+:mod:`pipeline.terrain_routes`) are accepted: missing attributes get defaults (no class,
+NaN speed and traffic, two-way, not a bridge).
+
+Preconditions
+-------------
+* Input lines carry a CRS. Coordinates handed to :func:`snap_points` are in ``graph.crs``.
+* :func:`edge_profiles` needs a north-up DEM with a CRS, elevations in metres.
+
+Noding rules (how lines become edges)
+-------------------------------------
+1. MultiLineStrings are split into their parts; Z/M are dropped; empty, non-line and
+   zero-length geometries are dropped (counted).
+2. Vertex snapping: all vertices (ends and interior) closer than ``snap_tolerance_m`` are
+   merged transitively (``scipy.spatial.cKDTree.query_pairs`` + connected components); each
+   cluster takes the coordinate of its lexicographically smallest member.
+3. Exact duplicates (same vertex sequence, either direction) are dropped, first kept.
+4. A line end that lies on, or within ``snap_tolerance_m`` of, another (non-bridge) line
+   away from its vertices (a T-junction, drawn exactly, short or long) is moved onto the
+   nearest such line, which gets a vertex there.
+5. Crossings between two non-bridge lines (and the ends of a shared stretch) get a shared
+   vertex: shapely intersection on the intersecting pairs of an ``STRtree``. New vertices
+   within ``snap_tolerance_m`` of an existing one are merged into it (rule 2 again).
+6. Lines are cut into edges at every vertex that is (a) a line end of any line, (b) shared by
+   two non-bridge lines, or (c) repeated within one non-bridge line. A bridge line is cut
+   only at its own two ends: nothing joins it mid-span — a road crossing under it, sharing a
+   vertex with it or ending on it does not connect to it. Bridge ends do connect.
+7. Duplicate and zero-length pieces after cutting are dropped (counted with 3).
+
+A line that crosses itself between vertices is not noded at that crossing (pairs of
+distinct lines only); a vertex it passes twice is a node.
+
+Edge lengths
+------------
+Geographic input (lon/lat): the geodesic length on the WGS 84 ellipsoid of the edge's vertices
+taken back to lon/lat (``pyproj.Geod(ellps="WGS84").inv`` on consecutive vertices — the same
+sum ``Geod.geometry_length`` forms). Projected input: planar length in the metric CRS
+(the input CRS itself if its unit is the metre). Either way, intersection points are placed in
+the metric CRS, which moves them by far less than a metre from the true geodesic crossing.
+
+References
+----------
+Dijkstra, E. W. (1959), Numerische Mathematik 1, 269–271 (shortest paths; scipy.sparse.csgraph).
+Karney, C. F. F. (2013), "Algorithms for geodesics", J. Geodesy 87, 43–55 (pyproj.Geod).
+Snyder, J. P. (1987), Map Projections — A Working Manual, USGS PP 1395 (UTM, azimuthal
+equidistant).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from functools import cached_property
+from typing import Any
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import shapely
+from numpy.typing import ArrayLike
+from pyproj import CRS, Geod, Transformer
+from scipy import sparse
+from scipy.sparse.csgraph import connected_components
+from scipy.spatial import cKDTree
+
+from pipeline.errors import AltigradeError
+from pipeline.terrain import sample_dem, transform_points
+
+__all__ = [
+    "RoadGraphError",
+    "RoadGraph",
+    "ATTRIBUTE_ALIASES",
+    "build_road_graph",
+    "graph_from_edges",
+    "metric_crs_for",
+    "dem_spacing_m",
+    "edge_profiles",
+    "snap_points",
+    "PROFILE_COLUMNS",
+    "PROFILE_ELEVATION_FRACTIONS",
+    "PROFILE_QUANTILE_COLUMNS",
+]
+
+#: Mean Earth radius [m] used only to express a geographic DEM's cell size in metres
+#: (IUGG mean radius R1 = 6 371 008.8 m; Moritz 1980, Geodetic Reference System 1980).
+_EARTH_MEAN_RADIUS_M = 6_371_008.8
+
+#: Largest longitude span [degrees] for which one UTM zone is used for geographic input; a
+#: wider extent gets an azimuthal equidistant projection centred on the data. UTM zones are
+#: 6° wide; at 3° beyond the central meridian the scale error is ≈ 0.1 % (Snyder 1987, §8).
+_UTM_MAX_LON_SPAN_DEG = 6.0
+
+#: Accepted column names (lower-case) for each canonical attribute, first match wins.
+ATTRIBUTE_ALIASES: Mapping[str, tuple[str, ...]] = {
+    "road_class": ("road_class", "roadclass", "class", "fclass", "highway", "road_type"),
+    "speed_kmh": ("speed_kmh", "speed_kph", "speed", "maxspeed", "max_speed", "speed_limit"),
+    "aadt": ("aadt", "adt", "traffic", "daily_traffic", "aadt_vehicles"),
+    "oneway": ("oneway", "one_way", "is_oneway", "oneway_flag", "is_one_way"),
+    "bridge": ("bridge", "is_bridge", "bridge_flag", "on_bridge", "brunnel"),
+}
+
+_TRUE_STRINGS = frozenset({"true", "t", "yes", "y", "1", "1.0"})
+_FALSE_STRINGS = frozenset({"false", "f", "no", "n", "0", "0.0", "", "nan", "none", "null"})
+_REVERSE_STRINGS = frozenset({"-1", "-1.0", "reverse", "backward"})
+
+#: Length fractions at which :func:`edge_profiles` reports elevation quantiles: the midpoints
+#: of five equal-length bins, so that each quantile stands for a fifth of the edge's length.
+PROFILE_ELEVATION_FRACTIONS = (0.1, 0.3, 0.5, 0.7, 0.9)
+
+#: Columns of the :func:`edge_profiles` elevation quantiles, in order.
+PROFILE_QUANTILE_COLUMNS = tuple(
+    f"elevation_p{round(100 * f):02d}_m" for f in PROFILE_ELEVATION_FRACTIONS
+)
+
+#: Columns of the :func:`edge_profiles` table, in order.
+PROFILE_COLUMNS = (
+    "elevation_min_m",
+    "elevation_mean_m",
+    "elevation_max_m",
+    *PROFILE_QUANTILE_COLUMNS,
+    "climb_forward_m",
+    "climb_reverse_m",
+    "grade_forward_pct",
+    "grade_reverse_pct",
+    "sustained_length_forward_m",
+    "sustained_climb_forward_m",
+    "sustained_length_reverse_m",
+    "sustained_climb_reverse_m",
+    "samples",
+    "dem_valid_share",
+)
+
+
+class RoadGraphError(AltigradeError, ValueError):
+    """The road lines or the DEM cannot be made into a graph or a profile."""
+
+
+# ----------------------------------------------------------------------------------------------
+# The graph object
+# ----------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class RoadGraph:
+    """A routable road graph in a metric CRS.
+
+    Attributes
+    ----------
+    crs : pyproj.CRS
+        Metric CRS of ``node_xy`` and ``geometry`` [m].
+    node_xy : ndarray, shape (n_nodes, 2)
+        Node coordinates [m].
+    u, v : ndarray of int64, shape (n_edges,)
+        Start and end node of each edge; "forward" is u → v, "reverse" v → u.
+    length_m : ndarray of float, shape (n_edges,)
+        Edge length [m] (geodesic for geographic input, see the module notes).
+    geometry : ndarray of shapely LineString, shape (n_edges,)
+        Edge geometry in ``crs``, oriented u → v.
+    attributes : DataFrame, n_edges rows
+        ``road_class`` (str or None), ``speed_kmh``, ``aadt`` (float, NaN if unknown),
+        ``oneway``, ``bridge`` (bool), ``source_row`` (row position in the input, −1 if none).
+    adjacency : scipy.sparse.csr_matrix, shape (n_nodes, n_nodes)
+        Entry (i, j) = length [m] of the shortest edge leading i → j; both directions unless
+        the edge is one-way; self-loops left out. Sorted indices (canonical).
+    entry_edge : ndarray of int64, shape (nnz,)
+        Edge behind each stored entry of ``adjacency`` (aligned with ``adjacency.data``).
+    entry_forward : ndarray of bool, shape (nnz,)
+        True where the entry runs u → v of its edge.
+    component : ndarray of int64, shape (n_nodes,)
+        Weakly connected component label of each node.
+    stats : dict
+        Build statistics for the run manifest (see :func:`build_road_graph`).
+    length_method : str
+        ``"geodesic_wgs84"`` or ``"planar"``.
+    """
+
+    crs: CRS
+    node_xy: np.ndarray
+    u: np.ndarray
+    v: np.ndarray
+    length_m: np.ndarray
+    geometry: np.ndarray
+    attributes: pd.DataFrame
+    adjacency: sparse.csr_matrix
+    entry_edge: np.ndarray
+    entry_forward: np.ndarray
+    component: np.ndarray
+    stats: dict[str, Any] = field(default_factory=dict)
+    length_method: str = "planar"
+
+    @property
+    def n_nodes(self) -> int:
+        """Number of nodes."""
+        return int(self.node_xy.shape[0])
+
+    @property
+    def n_edges(self) -> int:
+        """Number of edges."""
+        return int(self.u.size)
+
+    @cached_property
+    def _in_entries(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Entries grouped by head node: (pointer per head, tail of each, entry position)."""
+        a = self.adjacency
+        n = a.shape[0]
+        tails = np.repeat(np.arange(n, dtype=np.int64), np.diff(a.indptr))
+        order = np.argsort(a.indices, kind="stable")
+        ptr = np.r_[0, np.cumsum(np.bincount(a.indices, minlength=n))].astype(np.int64)
+        return ptr, tails[order], order.astype(np.int64)
+
+    @cached_property
+    def _tree(self) -> shapely.STRtree:
+        return shapely.STRtree(self.geometry)
+
+    def entry_index(self, tail: ArrayLike, head: ArrayLike) -> np.ndarray:
+        """Position in ``adjacency.data`` of the entry tail → head, −1 where there is none.
+
+        Vectorised over the queries, with one pass per incoming entry of the head nodes (a
+        road node has a handful): no search over all entries.
+        """
+        tail = np.asarray(tail, dtype=np.int64).ravel()
+        head = np.asarray(head, dtype=np.int64).ravel()
+        out = np.full(tail.size, -1, dtype=np.int64)
+        n = self.n_nodes
+        ptr, in_tail, in_ent = self._in_entries
+        ok = (tail >= 0) & (tail < n) & (head >= 0) & (head < n)
+        act = np.flatnonzero(ok)
+        start = ptr[head[act]]
+        deg = ptr[head[act] + 1] - start
+        keep = deg > 0
+        act, start, deg = act[keep], start[keep], deg[keep]
+        j = 0
+        while act.size:
+            pos = start + j
+            hit = in_tail[pos] == tail[act]
+            out[act[hit]] = in_ent[pos[hit]]
+            j += 1
+            more = ~hit & (deg > j)
+            act, start, deg = act[more], start[more], deg[more]
+        return out
+
+    def edges_frame(self) -> pd.DataFrame:
+        """Edges as a table: ``u``, ``v``, ``length_m`` and the attributes."""
+        df = pd.DataFrame({"u": self.u, "v": self.v, "length_m": self.length_m})
+        return pd.concat([df, self.attributes.reset_index(drop=True)], axis=1)
+
+
+# ----------------------------------------------------------------------------------------------
+# Helpers
+# ----------------------------------------------------------------------------------------------
+
+
+def _unique_rows(xy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Unique (x, y) rows in lexicographic order and the inverse index (exact equality)."""
+    n = xy.shape[0]
+    if n == 0:
+        return xy.reshape(0, 2), np.zeros(0, dtype=np.int64)
+    order = np.lexsort((xy[:, 1], xy[:, 0]))
+    s = xy[order]
+    new = np.r_[True, (s[1:, 0] != s[:-1, 0]) | (s[1:, 1] != s[:-1, 1])]
+    gid = np.cumsum(new) - 1
+    inv = np.empty(n, dtype=np.int64)
+    inv[order] = gid
+    return s[new], inv
+
+
+def _merge_close(points: np.ndarray, tol: float) -> tuple[np.ndarray, int]:
+    """Cluster points closer than ``tol`` transitively; return each point's representative
+    index (lowest index of its cluster) and the number of points merged away."""
+    n = points.shape[0]
+    if n < 2 or not tol > 0:
+        return np.arange(n), 0
+    pairs = cKDTree(points).query_pairs(r=tol, output_type="ndarray")
+    if pairs.size == 0:
+        return np.arange(n), 0
+    g = sparse.coo_matrix(
+        (np.ones(pairs.shape[0], dtype=np.int8), (pairs[:, 0], pairs[:, 1])), shape=(n, n)
+    )
+    ncomp, lab = connected_components(g, directed=False)
+    rep_of_label = np.full(ncomp, n, dtype=np.int64)
+    np.minimum.at(rep_of_label, lab, np.arange(n))
+    return rep_of_label[lab], n - ncomp
+
+
+def _find_column(df: pd.DataFrame, aliases: tuple[str, ...]) -> str | None:
+    lower = {str(c).lower(): c for c in df.columns if c != df.geometry.name}
+    for a in aliases:
+        if a in lower:
+            return lower[a]
+    return None
+
+
+def _parse_flag(values: pd.Series, *, allow_reverse: bool, any_text_true: bool) -> np.ndarray:
+    """Flags from mixed bool/number/text columns: 1 true, 0 false, −1 reverse (one-way
+    against the digitised direction, when ``allow_reverse``). Numbers: > 0 true, 0 false,
+    < 0 reverse. Text: see the module's true/false/reverse word lists; other text is true
+    when ``any_text_true`` (e.g. ``bridge="viaduct"``), else false."""
+    out = np.zeros(len(values), dtype=np.int8)
+    if len(values) == 0:
+        return out
+    if pd.api.types.is_bool_dtype(values):
+        return values.fillna(False).to_numpy(dtype=bool).astype(np.int8)
+    if pd.api.types.is_numeric_dtype(values):
+        x = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
+        out[x > 0] = 1
+        if allow_reverse:
+            out[x < 0] = -1
+        return out
+    text = values.astype(object).where(values.notna(), "").astype(str).str.strip().str.lower()
+    t = text.to_numpy(dtype=object)
+    is_true = np.isin(t, list(_TRUE_STRINGS))
+    is_false = np.isin(t, list(_FALSE_STRINGS))
+    is_rev = np.isin(t, list(_REVERSE_STRINGS)) if allow_reverse else np.zeros(t.size, bool)
+    # numbers written as text ("2", "-1.0")
+    num = pd.to_numeric(text, errors="coerce").to_numpy(dtype=float)
+    out[is_true | (num > 0)] = 1
+    if any_text_true:
+        out[~is_true & ~is_false & ~is_rev & np.isnan(num)] = 1
+    if allow_reverse:
+        out[is_rev | (num < 0)] = -1
+    out[is_false] = 0
+    return out
+
+
+def _normalise_attributes(df: pd.DataFrame) -> tuple[pd.DataFrame, dict[str, str | None]]:
+    """Canonical attribute columns (see :data:`ATTRIBUTE_ALIASES`) and which input column fed
+    each one."""
+    used: dict[str, str | None] = {}
+    out = pd.DataFrame(index=df.index)
+    col = _find_column(df, ATTRIBUTE_ALIASES["road_class"])
+    used["road_class"] = col
+    out["road_class"] = (
+        df[col].astype(object).where(df[col].notna(), None) if col is not None else None
+    )
+    for key in ("speed_kmh", "aadt"):
+        col = _find_column(df, ATTRIBUTE_ALIASES[key])
+        used[key] = col
+        if col is None:
+            out[key] = np.nan
+        else:
+            raw = df[col]
+            if not pd.api.types.is_numeric_dtype(raw):
+                raw = raw.astype(str).str.extract(r"([-+]?\d*\.?\d+)", expand=False)
+            out[key] = pd.to_numeric(raw, errors="coerce").astype(float)
+    col = _find_column(df, ATTRIBUTE_ALIASES["oneway"])
+    used["oneway"] = col
+    ow = (
+        _parse_flag(df[col], allow_reverse=True, any_text_true=False)
+        if col is not None
+        else np.zeros(len(df), dtype=np.int8)
+    )
+    out["oneway_code"] = ow
+    col = _find_column(df, ATTRIBUTE_ALIASES["bridge"])
+    used["bridge"] = col
+    br = (
+        _parse_flag(df[col], allow_reverse=False, any_text_true=True)
+        if col is not None
+        else np.zeros(len(df), dtype=np.int8)
+    )
+    out["bridge"] = br.astype(bool)
+    return out, used
+
+
+def metric_crs_for(geoms: np.ndarray, crs: CRS | str) -> CRS:
+    """A metric CRS for geometries given in ``crs``.
+
+    Parameters
+    ----------
+    geoms : array of shapely geometries in ``crs``.
+    crs : the geometries' CRS.
+
+    Returns
+    -------
+    ``crs`` itself if it is projected with metre units; otherwise the UTM zone of the data's
+    centre when the data span at most 6° of longitude, else an azimuthal equidistant CRS
+    (WGS 84) centred on the data (distances from the centre true to scale; Snyder 1987, §25).
+    """
+    crs = CRS.from_user_input(crs)
+    if crs.is_projected and crs.axis_info and all(
+        (a.unit_name or "").lower() in ("metre", "meter", "m") for a in crs.axis_info[:2]
+    ):
+        return crs
+    b = shapely.total_bounds(geoms)
+    if not np.all(np.isfinite(b)):
+        raise RoadGraphError("cannot choose a metric CRS: the lines have no finite coordinates")
+    if not crs.is_geographic:
+        lon, lat = transform_points([b[0], b[2]], [b[1], b[3]], crs, "EPSG:4326")
+        b = np.array([lon.min(), lat.min(), lon.max(), lat.max()])
+    lon0, lat0 = (b[0] + b[2]) / 2.0, (b[1] + b[3]) / 2.0
+    if (b[2] - b[0]) <= _UTM_MAX_LON_SPAN_DEG and -80.0 <= lat0 <= 84.0:
+        zone = int(np.floor((lon0 + 180.0) / 6.0)) % 60 + 1
+        return CRS.from_epsg((32600 if lat0 >= 0 else 32700) + zone)
+    return CRS.from_proj4(
+        f"+proj=aeqd +lat_0={lat0:.6f} +lon_0={lon0:.6f} +datum=WGS84 +units=m +no_defs"
+    )
+
+
+def _transform_geoms(geoms: np.ndarray, src: CRS, dst: CRS) -> np.ndarray:
+    if src == dst:
+        return geoms
+    t = Transformer.from_crs(src, dst, always_xy=True)
+
+    def f(xy: np.ndarray) -> np.ndarray:
+        x, y = t.transform(xy[:, 0], xy[:, 1])
+        return np.column_stack([x, y])
+
+    return shapely.transform(geoms, f)
+
+
+def _lines_from_coords(xy: np.ndarray, line_id: np.ndarray, n_lines: int) -> np.ndarray:
+    """LineStrings from vertices sorted by line; lines with < 2 vertices become None."""
+    out = np.full(n_lines, None, dtype=object)
+    counts = np.bincount(line_id, minlength=n_lines)
+    keep_line = counts >= 2
+    keep_v = keep_line[line_id]
+    if keep_v.any():
+        ids = line_id[keep_v]
+        uniq, compact = np.unique(ids, return_inverse=True)
+        out[uniq] = shapely.linestrings(xy[keep_v], indices=compact)
+    return out
+
+
+def _drop_repeated(xy: np.ndarray, line_id: np.ndarray) -> np.ndarray:
+    """Mask keeping a vertex unless it equals the previous vertex of the same line."""
+    if xy.shape[0] == 0:
+        return np.zeros(0, dtype=bool)
+    same = (
+        (line_id[1:] == line_id[:-1]) & (xy[1:, 0] == xy[:-1, 0]) & (xy[1:, 1] == xy[:-1, 1])
+    )
+    return np.r_[True, ~same]
+
+
+def _dedup_lines(geoms: np.ndarray) -> np.ndarray:
+    """Mask keeping the first of lines with identical vertex sequences (either direction)."""
+    if geoms.size == 0:
+        return np.zeros(0, dtype=bool)
+    wkb = shapely.to_wkb(shapely.normalize(geoms))
+    return ~pd.Series(wkb).duplicated(keep="first").to_numpy()
+
+
+def _vertex_line_pairs(cid: np.ndarray, line_id: np.ndarray, n_lines: int) -> np.ndarray:
+    """Sorted unique keys cid·n_lines + line of every (coordinate, line) incidence."""
+    return np.unique(cid.astype(np.int64) * np.int64(n_lines) + line_id.astype(np.int64))
+
+
+def _in_sorted(sorted_keys: np.ndarray, q: np.ndarray) -> np.ndarray:
+    if sorted_keys.size == 0:
+        return np.zeros(q.shape, dtype=bool)
+    pos = np.minimum(np.searchsorted(sorted_keys, q), sorted_keys.size - 1)
+    return sorted_keys[pos] == q
+
+
+# ----------------------------------------------------------------------------------------------
+# Graph from edge lists
+# ----------------------------------------------------------------------------------------------
+
+
+def graph_from_edges(
+    node_xy: ArrayLike,
+    u: ArrayLike,
+    v: ArrayLike,
+    length_m: ArrayLike | None = None,
+    *,
+    crs: CRS | str,
+    oneway: ArrayLike | None = None,
+    geometry: np.ndarray | None = None,
+    attributes: pd.DataFrame | None = None,
+    stats: dict[str, Any] | None = None,
+    length_method: str = "planar",
+) -> RoadGraph:
+    """Build a :class:`RoadGraph` from node coordinates and edge lists.
+
+    Parameters
+    ----------
+    node_xy : array_like, shape (n_nodes, 2)
+        Node coordinates in ``crs`` [m].
+    u, v : array_like of int, shape (n_edges,)
+        Edge end nodes.
+    length_m : array_like, optional
+        Edge lengths [m], > 0; default: straight-line distance between the nodes.
+    crs : CRS
+        Metric CRS of the coordinates.
+    oneway : array_like of bool, optional
+        True where only u → v may be travelled.
+    geometry : array of LineString, optional
+        Edge geometries oriented u → v; default: straight segments.
+    attributes : DataFrame, optional
+        Extra edge attributes (n_edges rows); canonical columns missing from it are filled.
+    stats : dict, optional
+        Statistics to carry (graph statistics are added).
+    length_method : str
+        Recorded in the graph.
+
+    Returns
+    -------
+    RoadGraph
+
+    Notes
+    -----
+    Between two nodes only the shortest edge in each direction enters the adjacency (parallel
+    edges cannot be shorter routes); self-loops are left out of it. Components are weak
+    (direction ignored), from ``scipy.sparse.csgraph.connected_components``.
+    """
+    node_xy = np.asarray(node_xy, dtype=float).reshape(-1, 2)
+    u = np.asarray(u, dtype=np.int64).ravel()
+    v = np.asarray(v, dtype=np.int64).ravel()
+    n = node_xy.shape[0]
+    m = u.size
+    if v.size != m:
+        raise RoadGraphError("u and v must have the same length")
+    if m and (u.min() < 0 or v.min() < 0 or u.max() >= n or v.max() >= n):
+        raise RoadGraphError("edge end node out of range")
+    if length_m is None:
+        length_m = np.hypot(*(node_xy[v] - node_xy[u]).T) if m else np.zeros(0)
+    length_m = np.asarray(length_m, dtype=float).ravel()
+    if length_m.size != m:
+        raise RoadGraphError("length_m must have one value per edge")
+    loops = u == v
+    if np.any(~np.isfinite(length_m) | ((length_m <= 0) & ~loops)):
+        raise RoadGraphError("edge lengths must be finite and > 0")
+    ow = np.zeros(m, dtype=bool) if oneway is None else np.asarray(oneway, dtype=bool).ravel()
+    if geometry is None:
+        geometry = (
+            shapely.linestrings(
+                np.stack([node_xy[u], node_xy[v]], axis=1).reshape(-1, 2),
+                indices=np.repeat(np.arange(m), 2),
+            )
+            if m
+            else np.zeros(0, dtype=object)
+        )
+    geometry = np.asarray(geometry, dtype=object)
+    attrs = (
+        pd.DataFrame(index=pd.RangeIndex(m))
+        if attributes is None
+        else attributes.reset_index(drop=True).copy()
+    )
+    for col, default in (
+        ("road_class", None),
+        ("speed_kmh", np.nan),
+        ("aadt", np.nan),
+        ("bridge", False),
+        ("source_row", -1),
+    ):
+        if col not in attrs:
+            attrs[col] = default
+    attrs["oneway"] = ow
+
+    # Directed entries: forward for every edge, reverse unless one-way; no self-loops.
+    fwd_e = np.flatnonzero(~loops)
+    rev_e = np.flatnonzero(~loops & ~ow)
+    rows = np.r_[u[fwd_e], v[rev_e]]
+    cols = np.r_[v[fwd_e], u[rev_e]]
+    eids = np.r_[fwd_e, rev_e]
+    isfwd = np.r_[np.ones(fwd_e.size, bool), np.zeros(rev_e.size, bool)]
+    lens = length_m[eids]
+    # Keep the shortest edge per (row, col); order by row, col, then length.
+    order = np.lexsort((eids, lens, cols, rows))
+    rows, cols, eids, isfwd, lens = rows[order], cols[order], eids[order], isfwd[order], lens[order]
+    first = np.ones(rows.size, dtype=bool)
+    first[1:] = (rows[1:] != rows[:-1]) | (cols[1:] != cols[:-1])
+    rows, cols, eids, isfwd, lens = rows[first], cols[first], eids[first], isfwd[first], lens[first]
+    itype = np.int32 if max(n, rows.size) < np.iinfo(np.int32).max else np.int64
+    indptr = np.r_[0, np.cumsum(np.bincount(rows, minlength=n))].astype(itype)
+    adj = sparse.csr_matrix((lens, cols.astype(itype), indptr), shape=(n, n))
+    adj.has_sorted_indices = True
+
+    if n:
+        sym = sparse.coo_matrix((np.ones(m, np.int8), (u, v)), shape=(n, n))
+        ncomp, comp = connected_components(sym, directed=False)
+        sizes = np.bincount(comp)
+        largest = int(sizes.max())
+    else:
+        ncomp, comp, largest = 0, np.zeros(0, dtype=np.int64), 0
+    st = dict(stats or {})
+    st.update(
+        {
+            "nodes": int(n),
+            "edges": int(m),
+            "self_loops": int(loops.sum()),
+            "oneway_edges": int(ow.sum()),
+            "parallel_entries_dropped": int((~first).sum()),
+            "components": int(ncomp),
+            "largest_component_nodes": largest,
+            "largest_component_share": float(largest / n) if n else 0.0,
+        }
+    )
+    return RoadGraph(
+        crs=CRS.from_user_input(crs),
+        node_xy=node_xy,
+        u=u,
+        v=v,
+        length_m=length_m,
+        geometry=geometry,
+        attributes=attrs,
+        adjacency=adj,
+        entry_edge=eids.astype(np.int64),
+        entry_forward=isfwd,
+        component=comp.astype(np.int64),
+        stats=st,
+        length_method=length_method,
+    )
+
+
+# ----------------------------------------------------------------------------------------------
+# Graph from lines
+# ----------------------------------------------------------------------------------------------
+
+
+def build_road_graph(
+    lines: gpd.GeoDataFrame,
+    *,
+    snap_tolerance_m: float = 1.0,
+    metric_crs: CRS | str | None = None,
+) -> RoadGraph:
+    """Node road lines into a routable graph.
+
+    Parameters
+    ----------
+    lines : GeoDataFrame
+        LineStrings / MultiLineStrings with a CRS. Optional attributes, matched
+        case-insensitively under the names in :data:`ATTRIBUTE_ALIASES`: ``road_class``,
+        ``speed_kmh`` [km/h], ``aadt`` [vehicles/day], ``oneway`` (true / yes / 1; −1 or
+        "reverse" = one-way against the digitised direction), ``bridge`` (true / yes / 1 or any
+        other non-empty text such as "viaduct"; false / no / 0 / empty = not a bridge).
+    snap_tolerance_m : float
+        Vertices closer than this are merged, and line ends this close to another line are
+        joined to it [m]. 0 disables snapping (exact coordinate matches still join).
+    metric_crs : CRS, optional
+        Working CRS (must be projected, in metres). Default: see :func:`metric_crs_for`.
+
+    Returns
+    -------
+    RoadGraph
+        ``stats`` holds: ``input_features``, ``line_parts``, ``non_line_dropped``,
+        ``empty_dropped``, ``zero_length_dropped``, ``duplicates_dropped``,
+        ``snapped_vertex_merges``, ``endpoint_snaps``, ``intersections_noded``,
+        ``bridge_crossings_skipped``, ``nodes``, ``edges``, ``self_loops``, ``oneway_edges``,
+        ``parallel_entries_dropped``, ``components``, ``largest_component_nodes``,
+        ``largest_component_share``, ``attribute_columns`` (which input column fed each
+        attribute), ``metric_crs``.
+
+    Raises
+    ------
+    RoadGraphError
+        Input without a CRS, or a ``metric_crs`` that is not projected.
+
+    Notes
+    -----
+    The noding rules and the length method are listed in the module docstring.
+    ``intersections_noded`` counts new vertices created where two lines cross or a line end is
+    joined onto another line; ``bridge_crossings_skipped`` counts (bridge, other line) pairs
+    that meet somewhere other than at the bridge's ends and were left unconnected.
+    """
+    if not isinstance(lines, gpd.GeoDataFrame):
+        raise RoadGraphError("build_road_graph needs a GeoDataFrame of LineStrings")
+    if lines.crs is None:
+        raise RoadGraphError("road lines have no CRS; set one (e.g. EPSG:4326) before building")
+    src_crs = CRS.from_user_input(lines.crs)
+    stats: dict[str, Any] = {"input_features": int(len(lines))}
+    tol = float(snap_tolerance_m)
+    if not np.isfinite(tol) or tol < 0:
+        raise RoadGraphError("snap_tolerance_m must be a finite number >= 0")
+
+    attrs_in, used = _normalise_attributes(lines)
+    stats["attribute_columns"] = used
+
+    # 1. Parts, 2-D, lines only.
+    geoms_in = np.asarray(lines.geometry.values, dtype=object)
+    missing = shapely.is_missing(geoms_in) | shapely.is_empty(geoms_in)
+    stats["empty_dropped"] = int(missing.sum())
+    parts, part_row = shapely.get_parts(shapely.force_2d(geoms_in), return_index=True)
+    tid = shapely.get_type_id(parts)
+    is_line = (tid == 1) | (tid == 2)
+    stats["non_line_dropped"] = int(np.unique(part_row[~is_line]).size)
+    parts, part_row = parts[is_line], part_row[is_line]
+    rings = np.flatnonzero(tid[is_line] == 2)
+    if rings.size:
+        parts = parts.copy()
+        rxy, rk = shapely.get_coordinates(parts[rings], return_index=True)
+        parts[rings] = shapely.linestrings(rxy, indices=rk)
+    stats["line_parts"] = int(parts.size)
+
+    # Reverse one-way-against-digitising lines so that oneway always means u → v.
+    ow_code = attrs_in["oneway_code"].to_numpy()
+    rev = ow_code[part_row] < 0
+    if rev.any():
+        parts = parts.copy()
+        parts[rev] = shapely.reverse(parts[rev])
+    bridge_row = attrs_in["bridge"].to_numpy(dtype=bool)
+
+    # 2. Metric CRS.
+    if metric_crs is not None:
+        work_crs = CRS.from_user_input(metric_crs)
+        if not work_crs.is_projected:
+            raise RoadGraphError(f"metric_crs must be a projected CRS; got {work_crs.name!r}")
+    else:
+        work_crs = metric_crs_for(parts, src_crs) if parts.size else (
+            src_crs if src_crs.is_projected else CRS.from_epsg(3857)
+        )
+    stats["metric_crs"] = work_crs.to_string()
+    parts = _transform_geoms(parts, src_crs, work_crs)
+    geographic = src_crs.is_geographic
+
+    xy, lid = shapely.get_coordinates(parts, return_index=True)
+    n_lines = parts.size
+    finite = np.isfinite(xy).all(axis=1)
+    bad_lines = np.unique(lid[~finite])
+    stats["empty_dropped"] += int(bad_lines.size)
+    keep = ~np.isin(lid, bad_lines)
+    xy, lid = xy[keep], lid[keep]
+
+    # 3. Vertex snapping.
+    uniq, inv = _unique_rows(xy)
+    rep, merges = _merge_close(uniq, tol)
+    xy = uniq[rep][inv]
+    keep = _drop_repeated(xy, lid)
+    xy, lid = xy[keep], lid[keep]
+    counts = np.bincount(lid, minlength=n_lines)
+    # Lines with at least one valid vertex but < 2 distinct ones are zero-length.
+    stats["zero_length_dropped"] = int(((counts == 1)).sum())
+    geoms = _lines_from_coords(xy, lid, n_lines)
+
+    # 4. Exact duplicates.
+    alive = ~pd.isna(geoms)
+    idx_alive = np.flatnonzero(alive)
+    dup_keep = _dedup_lines(geoms[idx_alive])
+    stats["duplicates_dropped"] = int((~dup_keep).sum())
+    line_keep = np.zeros(n_lines, dtype=bool)
+    line_keep[idx_alive[dup_keep]] = True
+    # Compact the surviving lines.
+    sel = np.flatnonzero(line_keep)
+    remap = np.full(n_lines, -1, dtype=np.int64)
+    remap[sel] = np.arange(sel.size)
+    vkeep = line_keep[lid]
+    xy, lid = xy[vkeep], remap[lid[vkeep]]
+    geoms = geoms[sel]
+    line_row = part_row[sel]
+    is_bridge = bridge_row[line_row]
+    n_lines = sel.size
+
+    endpoint_snaps = 0
+    crossings_new = 0
+    bridge_skipped = 0
+    if n_lines:
+        starts, ends = _line_bounds(lid, n_lines)
+        uniq, cid = _unique_rows(xy)
+        incid = _vertex_line_pairs(cid, lid, n_lines)
+
+        # 5. Line ends on or near (not on a vertex of) another non-bridge line: join them.
+        if (~is_bridge).any():
+            end_cid = np.unique(np.r_[cid[starts], cid[ends]])
+            pts = shapely.points(uniq[end_cid])
+            targets = np.flatnonzero(~is_bridge)
+            tree = shapely.STRtree(geoms[targets])
+            if tol > 0:
+                qi, qj = tree.query(pts, predicate="dwithin", distance=tol)
+            else:
+                qi, qj = tree.query(pts, predicate="intersects")
+            qj = targets[qj]
+            ok = ~_in_sorted(incid, end_cid[qi].astype(np.int64) * n_lines + qj)
+            qi, qj = qi[ok], qj[ok]
+            if qi.size:
+                dist = shapely.distance(pts[qi], geoms[qj])
+                order = np.lexsort((qj, dist, qi))
+                qi, qj, dist = qi[order], qj[order], dist[order]
+                firsts = np.r_[True, qi[1:] != qi[:-1]]
+                qi, qj, dist = qi[firsts], qj[firsts], dist[firsts]
+                proj = shapely.line_interpolate_point(
+                    geoms[qj], shapely.line_locate_point(geoms[qj], pts[qi])
+                )
+                qxy = np.where(
+                    dist[:, None] == 0.0, uniq[end_cid[qi]], shapely.get_coordinates(proj)
+                )
+                # Move the end coordinate (everywhere it occurs) onto the target line, and
+                # give the target line a vertex there.
+                moved = uniq.copy()
+                moved[end_cid[qi]] = qxy
+                xy = moved[cid]
+                xy, lid = _insert_vertices(xy, lid, n_lines, qj, qxy)
+                endpoint_snaps = int(qi.size)
+                starts, ends = _line_bounds(lid, n_lines)
+                geoms = _lines_from_coords(xy, lid, n_lines)
+
+        # 6. Crossings: every pair of lines that intersects (most only touch at shared
+        # vertices; their intersection points are found to be vertices already).
+        tree = shapely.STRtree(geoms)
+        pi, pj = tree.query(geoms, predicate="intersects")
+        m = pi < pj
+        pi, pj = pi[m], pj[m]
+        br_pair = is_bridge[pi] | is_bridge[pj]
+        pi, pj = pi[~br_pair], pj[~br_pair]
+        # Bridges: count lines that meet a bridge away from its ends (left unconnected).
+        if is_bridge.any():
+            bq, bo = tree.query(geoms[is_bridge], predicate="intersects")
+            b_line = np.flatnonzero(is_bridge)[bq]
+            keep_b = (bo != b_line) & ~(is_bridge[bo] & (bo < b_line))  # each pair once
+            bi, bj = b_line[keep_b], bo[keep_b]
+            inter = shapely.intersection(geoms[bi], geoms[bj])
+            bxy, bk = shapely.get_coordinates(inter, return_index=True)
+            if bk.size:
+
+                def _is_end(line: np.ndarray, p: np.ndarray) -> np.ndarray:
+                    return (p == xy[starts[line]]).all(axis=1) | (p == xy[ends[line]]).all(axis=1)
+
+                li, lj = bi[bk], bj[bk]
+                at_end = (is_bridge[li] & _is_end(li, bxy)) | (is_bridge[lj] & _is_end(lj, bxy))
+                away = np.zeros(bi.size, dtype=bool)
+                np.logical_or.at(away, bk, ~at_end)
+                bridge_skipped = int(away.sum())
+        if pi.size:
+            inter = shapely.intersection(geoms[pi], geoms[pj])
+            ixy, ik = shapely.get_coordinates(inter, return_index=True)
+            if ik.size:
+                uniq2, cid2 = _unique_rows(xy)
+                incid2 = _vertex_line_pairs(cid2, lid, n_lines)
+                # Intersection coordinates that are already vertices of a line need no insert.
+                pos = _lookup_rows(uniq2, ixy)
+                known = pos >= 0
+                posk = np.where(known, pos, 0).astype(np.int64) * n_lines
+                li, lj = pi[ik], pj[ik]
+                new_i = ~(known & _in_sorted(incid2, posk + li))
+                new_j = ~(known & _in_sorted(incid2, posk + lj))
+                newpts = ixy[new_i | new_j]
+                crossings_new = int(_unique_rows(newpts)[0].shape[0]) if newpts.size else 0
+                # 7. Insert the new vertices by their position along each line.
+                xy, lid = _insert_vertices(
+                    xy, lid, n_lines, np.r_[li[new_i], lj[new_j]], np.r_[ixy[new_i], ixy[new_j]]
+                )
+        # Snap once more (crossing points next to existing vertices), drop repeats.
+        uniq, inv = _unique_rows(xy)
+        rep, merges2 = _merge_close(uniq, tol)
+        merges += merges2
+        xy = uniq[rep][inv]
+        keep = _drop_repeated(xy, lid)
+        xy, lid = xy[keep], lid[keep]
+
+    stats["snapped_vertex_merges"] = int(merges)
+    stats["endpoint_snaps"] = int(endpoint_snaps)
+    stats["intersections_noded"] = int(crossings_new + endpoint_snaps)
+    stats["bridge_crossings_skipped"] = int(bridge_skipped)
+
+    # 8. Cut lines into edges.
+    if n_lines and xy.shape[0]:
+        counts = np.bincount(lid, minlength=n_lines)
+        ok_line = counts >= 2
+        stats["zero_length_dropped"] += int(((counts < 2) & (counts > 0)).sum())
+        vk = ok_line[lid]
+        xy, lid = xy[vk], lid[vk]
+        counts = np.bincount(lid, minlength=n_lines)
+        starts = np.r_[0, np.cumsum(counts)[:-1]]
+        ends = np.cumsum(counts) - 1
+        nv = lid.size
+        uniq, cid = _unique_rows(xy)
+        is_end_v = np.zeros(nv, dtype=bool)
+        is_end_v[starts[ok_line]] = True
+        is_end_v[ends[ok_line]] = True
+        node_coord = np.zeros(uniq.shape[0], dtype=bool)
+        node_coord[cid[is_end_v]] = True
+        nb = ~is_bridge[lid]
+        pair_keys = cid[nb].astype(np.int64) * n_lines + lid[nb]
+        pk_u, pk_count = np.unique(pair_keys, return_counts=True)
+        lines_per_coord = np.bincount(pk_u // n_lines, minlength=uniq.shape[0])
+        node_coord |= lines_per_coord >= 2
+        repeated = pk_u[pk_count >= 2] // n_lines
+        node_coord[repeated] = True
+        cut = is_end_v | (nb & node_coord[cid])
+
+        gcum = np.cumsum(cut)
+        is_first = np.zeros(nv, dtype=bool)
+        is_first[starts[ok_line]] = True
+        is_last = np.zeros(nv, dtype=bool)
+        is_last[ends[ok_line]] = True
+        # Every vertex but a line's last belongs to the piece starting at the latest cut;
+        # every cut vertex but a line's first also ends the previous piece.
+        a_idx = np.flatnonzero(~is_last)
+        b_idx = np.flatnonzero(cut & ~is_first)
+        piece = np.r_[gcum[a_idx], gcum[b_idx] - 1]
+        vidx = np.r_[a_idx, b_idx]
+        order = np.lexsort((vidx, piece))
+        piece, vidx = piece[order], vidx[order]
+        pid_u, pid = np.unique(piece, return_inverse=True)
+        pxy = xy[vidx]
+        piece_line = np.zeros(pid_u.size, dtype=np.int64)
+        piece_line[pid] = lid[vidx]
+        pgeoms = shapely.linestrings(pxy, indices=pid)
+        plen = shapely.length(pgeoms)
+        zero = ~(plen > 0)
+        pkeep = ~zero
+        dkeep = np.zeros(pgeoms.size, dtype=bool)
+        dkeep[np.flatnonzero(pkeep)[_dedup_lines(pgeoms[pkeep])]] = True
+        stats["zero_length_dropped"] += int(zero.sum())
+        stats["duplicates_dropped"] += int((pkeep & ~dkeep).sum())
+        pgeoms, piece_line = pgeoms[dkeep], piece_line[dkeep]
+    else:
+        pgeoms = np.zeros(0, dtype=object)
+        piece_line = np.zeros(0, dtype=np.int64)
+
+    # 9. Nodes and edges.
+    m = pgeoms.size
+    if m:
+        first_pt = shapely.get_coordinates(shapely.get_point(pgeoms, 0))
+        last_pt = shapely.get_coordinates(shapely.get_point(pgeoms, -1))
+        node_xy, inv = _unique_rows(np.r_[first_pt, last_pt])
+        u, v = inv[:m], inv[m:]
+    else:
+        node_xy = np.zeros((0, 2))
+        u = v = np.zeros(0, dtype=np.int64)
+
+    # 10. Lengths.
+    if m and geographic:
+        length = _geodesic_lengths(pgeoms, work_crs)
+        method = "geodesic_wgs84"
+    else:
+        length = shapely.length(pgeoms) if m else np.zeros(0)
+        method = "planar"
+
+    rows = line_row[piece_line] if m else np.zeros(0, dtype=np.int64)
+    a = attrs_in.iloc[rows].reset_index(drop=True)
+    attributes = pd.DataFrame(
+        {
+            "road_class": a["road_class"].to_numpy(dtype=object) if m else np.zeros(0, object),
+            "speed_kmh": a["speed_kmh"].to_numpy(dtype=float),
+            "aadt": a["aadt"].to_numpy(dtype=float),
+            "bridge": a["bridge"].to_numpy(dtype=bool),
+            "source_row": rows.astype(np.int64),
+        }
+    )
+    oneway = a["oneway_code"].to_numpy() != 0
+    return graph_from_edges(
+        node_xy,
+        u,
+        v,
+        length,
+        crs=work_crs,
+        oneway=oneway,
+        geometry=pgeoms,
+        attributes=attributes,
+        stats=stats,
+        length_method=method,
+    )
+
+
+def _line_bounds(lid: np.ndarray, n_lines: int) -> tuple[np.ndarray, np.ndarray]:
+    """Index of the first and last vertex of each line (vertices sorted by line)."""
+    c = np.cumsum(np.bincount(lid, minlength=n_lines))
+    return np.r_[0, c[:-1]], c - 1
+
+
+def _insert_vertices(
+    xy: np.ndarray, lid: np.ndarray, n_lines: int, ins_l: np.ndarray, ins_xy: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Insert points into lines at their position along the line (line ends stay ends)."""
+    ins_l = np.asarray(ins_l, dtype=np.int64)
+    ins_xy = np.asarray(ins_xy, dtype=float).reshape(-1, 2)
+    if ins_l.size == 0:
+        return xy, lid
+    starts, ends = _line_bounds(lid, n_lines)
+    geoms = _lines_from_coords(xy, lid, n_lines)
+    t_ins = shapely.line_locate_point(geoms[ins_l], shapely.points(ins_xy))
+    seg = np.hypot(xy[1:, 0] - xy[:-1, 0], xy[1:, 1] - xy[:-1, 1])
+    seg = np.where(lid[1:] == lid[:-1], seg, 0.0)
+    cum = np.r_[0.0, np.cumsum(seg)]
+    t_v = cum - cum[starts][lid]
+    t_v[starts] = -np.inf
+    t_v[ends] = np.inf
+    all_l = np.r_[lid, ins_l]
+    order = np.lexsort((np.r_[t_v, t_ins], all_l))
+    return np.r_[xy, ins_xy][order], all_l[order]
+
+
+def _lookup_rows(table: np.ndarray, q: np.ndarray) -> np.ndarray:
+    """Row index of each query (x, y) in the lexicographically sorted unique ``table``, −1 if
+    absent (exact equality)."""
+    if table.shape[0] == 0 or q.shape[0] == 0:
+        return np.full(q.shape[0], -1, dtype=np.int64)
+    both, inv = _unique_rows(np.r_[table, q])
+    # Rows of ``table`` are unique, so each unique row has at most one table member.
+    owner = np.full(both.shape[0], -1, dtype=np.int64)
+    owner[inv[: table.shape[0]]] = np.arange(table.shape[0])
+    return owner[inv[table.shape[0]:]]
+
+
+def _geodesic_lengths(geoms: np.ndarray, crs: CRS) -> np.ndarray:
+    """Geodesic length [m] on WGS 84 of each line (vertices taken back to lon/lat)."""
+    xy, idx = shapely.get_coordinates(geoms, return_index=True)
+    lon, lat = transform_points(xy[:, 0], xy[:, 1], crs, "EPSG:4326")
+    same = idx[1:] == idx[:-1]
+    geod = Geod(ellps="WGS84")
+    _, _, d = geod.inv(lon[:-1][same], lat[:-1][same], lon[1:][same], lat[1:][same])
+    return np.bincount(idx[:-1][same], weights=np.asarray(d, dtype=float), minlength=geoms.size)
+
+
+# ----------------------------------------------------------------------------------------------
+# Edge elevation profiles
+# ----------------------------------------------------------------------------------------------
+
+
+def dem_spacing_m(ds: Any, *, latitude_deg: float | None = None) -> float:
+    """The DEM's cell size in metres (the smaller of the two axes).
+
+    Parameters
+    ----------
+    ds : open rasterio dataset with a CRS.
+    latitude_deg : float, optional
+        Latitude at which to express a geographic DEM's longitude spacing [degrees];
+        default: the raster's centre.
+
+    Notes
+    -----
+    Projected: |a|, |e| times the CRS's metres per unit. Geographic: Δφ·R and Δλ·R·cos φ with
+    R = 6 371 008.8 m (mean Earth radius) — a spacing for densification, not a survey length.
+    """
+    if ds.crs is None:
+        raise RoadGraphError("the DEM has no CRS")
+    crs = CRS.from_user_input(ds.crs)
+    t = ds.transform
+    if crs.is_geographic:
+        if latitude_deg is None:
+            latitude_deg = t.f + t.e * ds.height / 2.0
+        k = np.pi / 180.0 * _EARTH_MEAN_RADIUS_M
+        return float(min(abs(t.e) * k, abs(t.a) * k * np.cos(np.radians(latitude_deg))))
+    unit = 1.0
+    if crs.axis_info and crs.axis_info[0].unit_conversion_factor:
+        unit = float(crs.axis_info[0].unit_conversion_factor)
+    return float(min(abs(t.a), abs(t.e)) * unit)
+
+
+def _length_quantiles(
+    value: np.ndarray,
+    seg_len: np.ndarray,
+    seg_edge: np.ndarray,
+    valid: np.ndarray,
+    n_edges: int,
+    fractions: tuple[float, ...],
+) -> list[np.ndarray]:
+    """Length-weighted quantiles of a per-segment value for each edge (NaN for an edge
+    without valid segments): the value of the first segment, in ascending order of value,
+    at which the cumulative length reaches f·(valid length)."""
+    sel = np.flatnonzero(valid & (seg_len > 0))
+    out = [np.full(n_edges, np.nan) for _ in fractions]
+    if sel.size == 0:
+        return out
+    order = np.lexsort((value[sel], seg_edge[sel]))
+    se, sv, sl = seg_edge[sel][order], value[sel][order], seg_len[sel][order]
+    cum = np.cumsum(sl)
+    tot = np.bincount(se, weights=sl, minlength=n_edges)
+    start = np.r_[0.0, np.cumsum(tot)[:-1]]
+    has = tot > 0
+    for o, f in zip(out, fractions, strict=True):
+        pos = np.searchsorted(cum, start[has] + f * tot[has], side="left")
+        o[has] = sv[np.minimum(pos, sv.size - 1)]
+    return out
+
+
+def _runs(flag: np.ndarray, group: np.ndarray) -> np.ndarray:
+    """Run id (0-based) of each element: a new run starts where ``flag`` or ``group`` changes."""
+    if flag.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    new = np.r_[True, (flag[1:] != flag[:-1]) | (group[1:] != group[:-1])]
+    return np.cumsum(new) - 1
+
+
+def _sustained(
+    dz: np.ndarray,
+    seg_len: np.ndarray,
+    seg_edge: np.ndarray,
+    valid: np.ndarray,
+    n_edges: int,
+    threshold_pct: float,
+    dip_tol_m: float,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Longest sustained climb per edge in the direction where ``dz`` is the rise: (length [m],
+    net climb [m])."""
+    out_len = np.zeros(n_edges)
+    out_climb = np.zeros(n_edges)
+    if dz.size == 0:
+        return out_len, out_climb
+    with np.errstate(invalid="ignore", divide="ignore"):
+        grade = np.where(seg_len > 0, 100.0 * dz / seg_len, 0.0)
+    up = valid & (grade >= threshold_pct)
+    r = _runs(up, seg_edge)
+    nrun = int(r[-1]) + 1
+    r_len = np.bincount(r, weights=seg_len, minlength=nrun)
+    r_up = np.zeros(nrun, dtype=bool)
+    r_up[r] = up
+    r_edge = np.zeros(nrun, dtype=np.int64)
+    r_edge[r] = seg_edge
+    r_allvalid = np.ones(nrun, dtype=bool)
+    np.logical_and.at(r_allvalid, r, valid)
+    prev_same = np.r_[False, r_edge[1:] == r_edge[:-1]]
+    next_same = np.r_[r_edge[1:] == r_edge[:-1], False]
+    # A dip is bridged when it lies between two steep stretches of the same edge, is no longer
+    # than the tolerance and holds no DEM gap (adjacent runs alternate up / not up).
+    bridged = ~r_up & prev_same & next_same & (r_len <= dip_tol_m) & r_allvalid
+    in_run = up | bridged[r]
+    r2 = _runs(in_run, seg_edge)
+    n2 = int(r2[-1]) + 1
+    c_len = np.bincount(r2, weights=seg_len, minlength=n2)
+    c_dz = np.bincount(r2, weights=np.where(valid, dz, 0.0), minlength=n2)
+    c_in = np.zeros(n2, dtype=bool)
+    c_in[r2] = in_run
+    c_edge = np.zeros(n2, dtype=np.int64)
+    c_edge[r2] = seg_edge
+    sel = np.flatnonzero(c_in)
+    if sel.size:
+        order = np.lexsort((c_len[sel], c_edge[sel]))
+        s = sel[order]
+        last = np.r_[c_edge[s][1:] != c_edge[s][:-1], True]
+        best = s[last]
+        out_len[c_edge[best]] = c_len[best]
+        out_climb[c_edge[best]] = c_dz[best]
+    return out_len, out_climb
+
+
+def edge_profiles(
+    graph: RoadGraph,
+    ds: Any,
+    *,
+    climb_grade_threshold_pct: float = 4.0,
+    dip_tolerance_m: float | None = None,
+    spacing_m: float | None = None,
+    band: int = 1,
+) -> pd.DataFrame:
+    """Elevation profile statistics of every edge, sampled from the DEM.
+
+    Parameters
+    ----------
+    graph : RoadGraph
+    ds : open rasterio dataset
+        North-up DEM with a CRS, elevations [m]. Sampled with
+        :func:`pipeline.terrain.sample_dem` once, block by block, for all edges.
+    climb_grade_threshold_pct : float
+        Grade above which a stretch counts as climbing for the sustained-climb measure [%].
+    dip_tolerance_m : float, optional
+        Longest stretch below the threshold tolerated inside a sustained climb [m]; default
+        twice the sampling spacing (one or two DEM cells — the DEM's own noise scale).
+    spacing_m : float, optional
+        Densification spacing [m]; default the DEM cell size (:func:`dem_spacing_m`).
+    band : int
+        DEM band.
+
+    Returns
+    -------
+    DataFrame, one row per edge (index = edge id), columns :data:`PROFILE_COLUMNS`:
+
+    ``elevation_min_m``, ``elevation_mean_m``, ``elevation_max_m`` [m]
+        Over the sampled vertices; the mean is length-weighted (trapezoidal).
+    ``elevation_p10_m`` … ``elevation_p90_m`` [m]
+        Length-weighted quantiles of the segment-midpoint elevations at the fractions
+        :data:`PROFILE_ELEVATION_FRACTIONS`: each stands for a fifth of the edge's length, so a
+        long edge down a grade is seen in its low part too (the corridor model evaluates the
+        requirement at these five elevations).
+    ``climb_forward_m``, ``climb_reverse_m`` [m]
+        Sum of the rises between consecutive samples travelling u → v (forward) or v → u.
+    ``grade_forward_pct``, ``grade_reverse_pct`` [%]
+        Mean uphill grade: climb / horizontal length of the rising stretches ×100; 0 where
+        the direction never rises.
+    ``sustained_length_forward_m``, ``sustained_climb_forward_m`` (and ``_reverse_``) [m]
+        Length and net climb of the longest sustained climb (rule below); 0 if none.
+    ``samples`` [count], ``dem_valid_share`` [0…1]
+        Sampled vertices and the share of them with a DEM value.
+
+    ``DataFrame.attrs`` holds ``spacing_m``, ``dip_tolerance_m``, ``blocks_read``,
+    ``climb_grade_threshold_pct``.
+
+    Notes
+    -----
+    Each edge is densified (``shapely.segmentize``) so that no segment is longer than the
+    spacing; sample i has elevation z_i, segment i has horizontal length ℓ_i (planar length in
+    the metric CRS rescaled so that Σℓ_i equals the edge's ``length_m``) and rise
+    Δz_i = z_{i+1} − z_i. Forward climb C = Σ max(Δz_i, 0); reverse climb Σ max(−Δz_i, 0);
+    mean uphill grade = 100 · C / Σ_{Δz_i>0} ℓ_i.
+
+    Sustained-climb rule: a segment is steep when 100·Δz_i/ℓ_i ≥ threshold. A sustained climb
+    is a maximal chain of steep segments within one edge in which gaps of non-steep segments
+    are tolerated if the gap is no longer than ``dip_tolerance_m`` and has a DEM value at every
+    sample; its length is Σℓ and its climb the net rise Σ Δz over the chain (gaps included).
+    The longest chain (by length) is reported. A climb is cut at nodes: a grade that runs
+    through a junction is two climbs (a limitation: the requirement model sees the longer one).
+
+    Segments touching a sample without a DEM value (nodata or outside the DEM) are left out of
+    every sum; an edge with no DEM value gets NaN elevations and zero climbs.
+
+    All sums are ``numpy.bincount`` / ``reduceat`` over segment ids: no loop over edges.
+
+    References
+    ----------
+    Bilinear DEM sampling: :func:`pipeline.terrain.sample_dem`. The grade threshold (≈ 4 %)
+    and dip tolerance are planning choices (from memory: highway design guides treat grades
+    above about 4–5 % sustained over a kilometre or more as climbing-lane candidates).
+    """
+    m = graph.n_edges
+    empty = pd.DataFrame({c: np.zeros(0) for c in PROFILE_COLUMNS})
+    if ds.crs is None:
+        raise RoadGraphError("the DEM has no CRS")
+    if spacing_m is None:
+        lat = None
+        if CRS.from_user_input(ds.crs).is_geographic and m:
+            b = shapely.total_bounds(graph.geometry)
+            _, lat_c = transform_points(
+                [(b[0] + b[2]) / 2], [(b[1] + b[3]) / 2], graph.crs, "EPSG:4326"
+            )
+            lat = float(lat_c[0])
+        spacing_m = dem_spacing_m(ds, latitude_deg=lat)
+    spacing_m = float(spacing_m)
+    if not spacing_m > 0:
+        raise RoadGraphError("profile spacing must be > 0 m")
+    dip = 2.0 * spacing_m if dip_tolerance_m is None else float(dip_tolerance_m)
+    attrs = {
+        "spacing_m": spacing_m,
+        "dip_tolerance_m": dip,
+        "climb_grade_threshold_pct": float(climb_grade_threshold_pct),
+        "blocks_read": 0,
+    }
+    if m == 0:
+        empty.attrs.update(attrs)
+        return empty
+    dens = shapely.segmentize(graph.geometry, max_segment_length=spacing_m)
+    xy, eid = shapely.get_coordinates(dens, return_index=True)
+    sx, sy = transform_points(xy[:, 0], xy[:, 1], graph.crs, ds.crs)
+    res = sample_dem(ds, sx, sy, band=band)
+    attrs["blocks_read"] = int(res.blocks_read)
+    z = np.asarray(res.value, dtype=float)
+
+    nvert = np.bincount(eid, minlength=m)
+    starts = np.r_[0, np.cumsum(nvert)[:-1]]
+    zf = np.isfinite(z)
+    zmin = np.fmin.reduceat(z, starts)
+    zmax = np.fmax.reduceat(z, starts)
+    valid_count = np.bincount(eid, weights=zf, minlength=m)
+
+    same = eid[1:] == eid[:-1]
+    seg_edge = eid[:-1][same]
+    planar = np.hypot(xy[1:, 0] - xy[:-1, 0], xy[1:, 1] - xy[:-1, 1])[same]
+    planar_sum = np.bincount(seg_edge, weights=planar, minlength=m)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scale = np.where(planar_sum > 0, graph.length_m / planar_sum, 1.0)
+    seg_len = planar * scale[seg_edge]
+    z0 = z[:-1][same]
+    z1 = z[1:][same]
+    valid = np.isfinite(z0) & np.isfinite(z1)
+    dz = np.where(valid, z1 - z0, 0.0)
+    vlen = np.where(valid, seg_len, 0.0)
+
+    len_valid = np.bincount(seg_edge, weights=vlen, minlength=m)
+    zsum = np.bincount(
+        seg_edge, weights=np.where(valid, 0.5 * (z0 + z1) * seg_len, 0.0), minlength=m
+    )
+    zvert_mean = np.bincount(eid, weights=np.where(zf, z, 0.0), minlength=m)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        zvert_mean = np.where(valid_count > 0, zvert_mean / valid_count, np.nan)
+        zmean = np.where(len_valid > 0, zsum / len_valid, zvert_mean)
+
+    quant = _length_quantiles(
+        np.where(valid, 0.5 * (z0 + z1), np.nan), seg_len, seg_edge, valid, m,
+        PROFILE_ELEVATION_FRACTIONS,
+    )
+
+    rise = np.maximum(dz, 0.0)
+    fall = np.maximum(-dz, 0.0)
+    climb_f = np.bincount(seg_edge, weights=rise, minlength=m)
+    climb_r = np.bincount(seg_edge, weights=fall, minlength=m)
+    up_len_f = np.bincount(seg_edge, weights=np.where(dz > 0, vlen, 0.0), minlength=m)
+    up_len_r = np.bincount(seg_edge, weights=np.where(dz < 0, vlen, 0.0), minlength=m)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        grade_f = np.where(up_len_f > 0, 100.0 * climb_f / up_len_f, 0.0)
+        grade_r = np.where(up_len_r > 0, 100.0 * climb_r / up_len_r, 0.0)
+
+    thr = float(climb_grade_threshold_pct)
+    sl_f, sc_f = _sustained(dz, seg_len, seg_edge, valid, m, thr, dip)
+    sl_r, sc_r = _sustained(-dz, seg_len, seg_edge, valid, m, thr, dip)
+
+    out = pd.DataFrame(
+        {
+            "elevation_min_m": zmin,
+            "elevation_mean_m": zmean,
+            "elevation_max_m": zmax,
+            **dict(zip(PROFILE_QUANTILE_COLUMNS, quant, strict=True)),
+            "climb_forward_m": climb_f,
+            "climb_reverse_m": climb_r,
+            "grade_forward_pct": grade_f,
+            "grade_reverse_pct": grade_r,
+            "sustained_length_forward_m": sl_f,
+            "sustained_climb_forward_m": sc_f,
+            "sustained_length_reverse_m": sl_r,
+            "sustained_climb_reverse_m": sc_r,
+            "samples": nvert.astype(np.int64),
+            "dem_valid_share": valid_count / np.maximum(nvert, 1),
+        },
+        index=pd.RangeIndex(m, name="edge"),
+    )
+    out.attrs.update(attrs)
+    return out
+
+
+# ----------------------------------------------------------------------------------------------
+# Snapping
+# ----------------------------------------------------------------------------------------------
+
+
+def snap_points(
+    graph: RoadGraph, points_xy: ArrayLike, max_distance_m: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Attach points to the graph: the nearer end node of the nearest edge.
+
+    Parameters
+    ----------
+    graph : RoadGraph
+    points_xy : array_like, shape (n, 2)
+        Point coordinates in ``graph.crs`` [m] (transform first, e.g. with
+        :func:`pipeline.terrain.transform_points`). NaN rows are allowed.
+    max_distance_m : float
+        Largest accepted distance from a point to the road network [m].
+
+    Returns
+    -------
+    (node_index, distance_m, snapped)
+        ``node_index`` (int64, −1 for NaN points or an empty graph): the end node of the
+        nearest edge that lies nearer along that edge to the point's foot;
+        ``distance_m``: distance from the point to the nearest edge [m] (NaN where no edge);
+        ``snapped``: ``distance_m <= max_distance_m``. Points beyond the distance keep their
+        node and distance but are flagged ``snapped=False`` — never dropped.
+
+    Notes
+    -----
+    Nearest edge by ``shapely.STRtree.query_nearest`` (ties: lowest edge id). The edge is not
+    split at the foot point: routing starts at the nearer end node, which can add up to half
+    the edge's length to a trip (documented simplification).
+    """
+    pts = np.asarray(points_xy, dtype=float).reshape(-1, 2)
+    n = pts.shape[0]
+    node = np.full(n, -1, dtype=np.int64)
+    dist = np.full(n, np.nan)
+    if n == 0 or graph.n_edges == 0:
+        return node, dist, np.zeros(n, dtype=bool)
+    ok = np.isfinite(pts).all(axis=1)
+    idx = np.flatnonzero(ok)
+    if idx.size:
+        p = shapely.points(pts[idx])
+        (qi, qe), d = graph._tree.query_nearest(p, return_distance=True, all_matches=True)
+        order = np.lexsort((qe, qi))
+        qi, qe, d = qi[order], qe[order], d[order]
+        first = np.r_[True, qi[1:] != qi[:-1]]
+        qi, qe, d = qi[first], qe[first], d[first]
+        g = graph.geometry[qe]
+        t = shapely.line_locate_point(g, p[qi])
+        half = shapely.length(g) / 2.0
+        node[idx[qi]] = np.where(t <= half, graph.u[qe], graph.v[qe])
+        dist[idx[qi]] = d
+    with np.errstate(invalid="ignore"):
+        snapped = dist <= float(max_distance_m)
+    return node, dist, snapped
