@@ -201,7 +201,7 @@ def _dispatch(args, con: _Console) -> int:
     if args.command == "demo":
         from pipeline.demo import build_demo_region
 
-        cache = (args.cache_dir or default_cache_dir()) / f"demo-v1-{args.cells}c-{args.stations}s"
+        cache = (args.cache_dir or default_cache_dir()) / f"demo-v2-{args.cells}c-{args.stations}s"
         if args.cells < 100 or args.stations < 10:
             con.error("--cells must be ≥ 100 and --stations ≥ 10")
             return 2

@@ -16,7 +16,9 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from pipeline.corridors import CorridorParams
 from pipeline.errors import ConfigError
+from pipeline.inspection import InspectionPlanParams, PriorityWeights
 from pipeline.requirement import DEFAULT_FLEET_MIX, DesignDay, FleetModelParams
+from pipeline.supply import SupplyParams
 
 __all__ = [
     "RunConfig",
@@ -24,6 +26,8 @@ __all__ = [
     "FleetMixConfig",
     "ComplianceConfig",
     "CorridorsConfig",
+    "InspectionConfig",
+    "SupplyConfig",
     "TerrainConfig",
     "ZonesConfig",
     "OutputsConfig",
@@ -56,6 +60,9 @@ class InputsConfig(_Frozen):
     )
     towns: Path | None = Field(None, description="Towns (Points) with a `population` column.")
     fleet_zones: Path | None = Field(None, description="Polygons with per-zone fleet mix shares.")
+    inspector_bases: Path | None = Field(
+        None, description="Inspector bases: CSV with base_id, name, lon, lat (for the plan)."
+    )
 
 
 class TerrainConfig(_Frozen):
@@ -136,6 +143,21 @@ class CorridorsConfig(_Frozen):
     )
 
 
+class InspectionConfig(_Frozen):
+    """The regulator's inspection priorities and plan (weights are planning choices)."""
+
+    enabled: bool = True
+    weights: PriorityWeights = Field(default_factory=PriorityWeights)
+    plan: InspectionPlanParams = Field(default_factory=InspectionPlanParams)
+
+
+class SupplyConfig(_Frozen):
+    """The distributor's grade-supply plan."""
+
+    enabled: bool = True
+    plan: SupplyParams = Field(default_factory=SupplyParams)
+
+
 class ZonesConfig(_Frozen):
     """Justified-AKI zones over the DEM."""
 
@@ -192,6 +214,8 @@ class RunConfig(_Frozen):
     compliance: ComplianceConfig = ComplianceConfig()
     station_defaults: StationDefaultsConfig = StationDefaultsConfig()
     corridors: CorridorsConfig = CorridorsConfig()
+    inspection: InspectionConfig = InspectionConfig()
+    supply: SupplyConfig = SupplyConfig()
     zones: ZonesConfig = ZonesConfig()
     outputs: OutputsConfig = OutputsConfig()
     execution: ExecutionConfig = ExecutionConfig()

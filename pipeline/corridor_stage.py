@@ -21,7 +21,7 @@ from pipeline.corridors import compute_corridors, corridor_lines
 from pipeline.errors import InputFileError
 from pipeline.roadgraph import build_road_graph, edge_profiles, snap_points
 
-__all__ = ["corridors_stage", "requirement_function", "derived_roads"]
+__all__ = ["corridors_stage", "requirement_function", "derived_roads", "road_graph_for"]
 
 
 def requirement_function(cfg: RunConfig):
@@ -74,6 +74,23 @@ def derived_roads(ds, endpoints_xy: np.ndarray, grid_cells: int) -> gpd.GeoDataF
     return gpd.GeoDataFrame({"road_class": ["derived"] * len(geoms)}, geometry=geoms, crs=ds.crs)
 
 
+def road_graph_for(cfg: RunConfig, ds, stations: gpd.GeoDataFrame, towns: gpd.GeoDataFrame | None):
+    """The routable road graph of a run: the road layer, or roads derived from the DEM between
+    stations and towns when there is none. Returns (graph, description of the source)."""
+    if cfg.inputs.roads is not None:
+        roads = io.read_vector(cfg.inputs.roads, what="roads")
+        source = "road layer"
+    else:
+        sx, sy = terrain.transform_points(stations["lon"], stations["lat"], "EPSG:4326", ds.crs)
+        pts = [np.column_stack([sx, sy])]
+        if towns is not None:
+            tt = towns.to_crs(ds.crs)
+            pts.append(np.column_stack([tt.geometry.x, tt.geometry.y]))
+        roads = derived_roads(ds, np.vstack(pts), cfg.corridors.fallback_grid_cells)
+        source = "derived from the DEM (no road layer)"
+    return build_road_graph(roads), source
+
+
 def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     """Adds ``export_risk_l_aki_per_month``, ``fuel_share_in_deficit``, ``corridor_status``,
     ``corridor_required_aki``, ``road_snap_m``; makes the ``corridors`` lines (graph CRS)."""
@@ -88,19 +105,8 @@ def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     if towns is not None and cc.destinations == "towns" and "population" not in towns.columns:
         raise InputFileError(f"{cfg.inputs.towns}: the towns layer needs a 'population' column")
     with io.open_dem(cfg.inputs.dem) as ds:
-        if cfg.inputs.roads is not None:
-            roads = io.read_vector(cfg.inputs.roads, what="roads")
-            source = "road layer"
-        else:
-            sx, sy = terrain.transform_points(st["lon"], st["lat"], "EPSG:4326", ds.crs)
-            pts = [np.column_stack([sx, sy])]
-            if towns is not None:
-                tt = towns.to_crs(ds.crs)
-                pts.append(np.column_stack([tt.geometry.x, tt.geometry.y]))
-            roads = derived_roads(ds, np.vstack(pts), cc.fallback_grid_cells)
-            source = "derived from the DEM (no road layer)"
+        graph, source = road_graph_for(cfg, ds, st, towns)
         ctx.progress("corridors", 0.1)
-        graph = build_road_graph(roads)
         profiles = edge_profiles(graph, ds, climb_grade_threshold_pct=cc.climb_grade_threshold_pct)
     ctx.progress("corridors", 0.4)
     sx, sy = terrain.transform_points(st["lon"], st["lat"], "EPSG:4326", graph.crs)

@@ -30,7 +30,7 @@ from __future__ import annotations
 import csv
 import io
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import date, timedelta
 from pathlib import Path
@@ -204,6 +204,7 @@ class DemoPaths:
     towns: Path
     roads: Path
     fleet_zones: Path
+    inspector_bases: Path
 
 
 @dataclass(frozen=True)
@@ -266,6 +267,21 @@ class Town:
     y: float
     population: int
     elevation_m: float
+
+
+def inspector_bases_csv_text(towns: Sequence[Town]) -> str:
+    """Two invented inspector bases: the most populous plain town and the most populous
+    plateau town (columns ``base_id``, ``name``, ``lon``, ``lat``; EPSG:4326)."""
+    from pyproj import Transformer
+
+    t = Transformer.from_crs(DEMO_CRS, "EPSG:4326", always_xy=True)
+    lines = ["base_id,name,lon,lat"]
+    for i, kind in enumerate(("plain", "plateau"), start=1):
+        cands = [tw for tw in towns if tw.kind == kind] or list(towns)
+        town = max(cands, key=lambda tw: (tw.population, tw.name))
+        lon, lat = t.transform(town.x, town.y)
+        lines.append(f"IB-{i},{town.name} inspection office,{lon:.6f},{lat:.6f}")
+    return "\n".join(lines) + "\n"
 
 
 # --------------------------------------------------------------------------- terrain
@@ -1063,6 +1079,7 @@ def build_demo_region(
         folder / "towns.gpkg",
         folder / "roads.gpkg",
         folder / "fleet_zones.gpkg",
+        folder / "inspector_bases.csv",
     )
     report("synthesising terrain", 0.0)
     terrain = synthesize_terrain(size_cells, seed)
@@ -1083,6 +1100,7 @@ def build_demo_region(
         _write_gpkg(roads, paths.roads, "roads")
         _write_gpkg(zones, paths.fleet_zones, "fleet_zones")
         paths.stations.write_text(station_csv_text(rows), encoding="utf-8", newline="")
+        paths.inspector_bases.write_text(inspector_bases_csv_text(towns), encoding="utf-8")
     except OSError as exc:
         raise OutputError(f"cannot write the demo region into {folder}: {exc}") from exc
     report("done", 1.0)

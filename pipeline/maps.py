@@ -69,6 +69,48 @@ STATION_POPUP = (
 RISK_COLORS = ("#fec287", "#f1605d", "#b5367a", "#3b0f70")
 
 
+def town_layer(towns: gpd.GeoDataFrame, visible: bool) -> MapLayer:
+    """Towns as small dark-grey points, searchable by name."""
+    t = towns.assign(place_kind="town")
+    return MapLayer(
+        name="Towns",
+        gdf=t,
+        style=CategoryStyle(
+            column="place_kind", colors={"town": "#3d3d3d"}, labels={"town": "Town"}
+        ),
+        popup_fields=_present(t, (("population", "Population"),)),
+        tooltip_field="name" if "name" in t.columns else None,
+        point_radius_px=4,
+        visible=visible,
+        searchable_fields=("name",) if "name" in t.columns else (),
+    )
+
+
+def road_layer(roads: gpd.GeoDataFrame) -> MapLayer:
+    """Roads in greys, wider with traffic where the layer gives it."""
+    style = None
+    if "aadt" in roads.columns:
+        style = RampStyle(
+            column="aadt",
+            breaks=(1000.0, 5000.0),
+            colors=("#9a9a9a", "#6b6b6b", "#3d3d3d"),
+            width_range=(1.5, 4.0),
+            label_fmt="{:,.0f}",
+            unit="veh/day",
+        )
+    else:
+        roads = roads.assign(road_kind="road")
+        style = CategoryStyle(
+            column="road_kind", colors={"road": "#6b6b6b"}, labels={"road": "Road"}
+        )
+    return MapLayer(
+        name="Roads",
+        gdf=roads,
+        style=style,
+        popup_fields=_present(roads, (("road_class", "Class"), ("aadt", "Traffic [veh/day]"))),
+    )
+
+
 def corridor_layer(corridors: gpd.GeoDataFrame) -> MapLayer | None:
     """Corridors drawn by risk: width and a colour ramp by ``risk_l_aki_per_month``."""
     if corridors is None or not len(corridors):
@@ -174,39 +216,9 @@ def station_map_spec(
             )
         )
     if roads is not None and len(roads):
-        style = None
-        if "aadt" in roads.columns:
-            style = RampStyle(
-                column="aadt",
-                breaks=(1000.0, 5000.0),
-                colors=("#8c8c8c", "#555555", "#222222"),
-                width_range=(1.5, 4.5),
-                label_fmt="{:,.0f}",
-                unit="veh/day",
-            )
-        layers.append(
-            MapLayer(
-                name="Roads",
-                gdf=roads,
-                style=style,
-                popup_fields=_present(
-                    roads, (("road_class", "Class"), ("aadt", "Traffic [veh/day]"))
-                ),
-                visible=True,
-            )
-        )
+        layers.append(road_layer(roads))
     if towns is not None and len(towns):
-        layers.append(
-            MapLayer(
-                name="Towns",
-                gdf=towns,
-                popup_fields=_present(towns, (("population", "Population"),)),
-                tooltip_field="name" if "name" in towns.columns else None,
-                point_radius_px=4,
-                visible=False,
-                searchable_fields=("name",) if "name" in towns.columns else (),
-            )
-        )
+        layers.append(town_layer(towns, visible=False))
     cl = corridor_layer(corridors)
     if cl is not None:
         layers.append(cl)
@@ -250,6 +262,305 @@ def station_map_spec(
         generated_note=generated_note,
         legend_title="Legend",
     )
+
+
+CHANGE_STYLE = CategoryStyle(
+    column="regular_change",
+    colors={
+        "raise": OKABE_ITO_NAMED["vermillion"],
+        "keep": OKABE_ITO_NAMED["bluish_green"],
+        "may lower": OKABE_ITO_NAMED["sky_blue"],
+        "not_assessed": "#9e9e9e",
+    },
+    labels={
+        "raise": "Raise the regular grade",
+        "keep": "Keep today's regular",
+        "may lower": "Could go lower (information only)",
+        "not_assessed": "Not assessed",
+    },
+)
+
+GRADE_STYLE = CategoryStyle(
+    column="regular_grade_label",
+    colors={
+        "85": OKABE_ITO_NAMED["orange"],
+        "86": OKABE_ITO_NAMED["yellow"],
+        "87 or higher": OKABE_ITO_NAMED["blue"],
+    },
+    labels={
+        "85": "Regular sold as 85 AKI",
+        "86": "Regular sold as 86 AKI",
+        "87 or higher": "Regular sold as 87 AKI or higher",
+    },
+)
+
+PLAN_POPUP = (
+    ("station_id", "Station id"),
+    ("operator", "Operator"),
+    ("elevation_m", "Elevation [m]"),
+    ("regular_aki", "Regular today [AKI]"),
+    ("recommended_regular_aki", "Recommended regular [AKI]"),
+    ("recommendation_driver", "Set by"),
+    ("volume_l_per_month", "Volume, all grades [L/month]"),
+    ("incremental_cost_usd_per_month", "Extra cost [USD/month]"),
+    ("fleet_zone", "Supply area / fleet zone"),
+    ("supply_reason", "Why"),
+)
+
+PUBLIC_POPUP = (
+    ("public_sold", "What is sold here"),
+    ("elevation_m", "Elevation [m]"),
+    ("public_suits", "Which vehicles it suits here"),
+    ("public_driving_down", "Driving down or towing?"),
+)
+
+REGULATOR_POPUP = STATION_POPUP[:-1] + (
+    ("priority_rank", "Inspection priority rank"),
+    ("priority_score", "Priority score [0–100]"),
+    ("priority_reason", "Why this priority"),
+    ("planned_day", "Planned inspection day"),
+    ("verdict_reason", "Verdict"),
+)
+
+
+def _fmt_num(v: float, unit: str = "") -> str:
+    return f"{v:,.0f}{unit}" if np.isfinite(v) else "—"
+
+
+def public_texts(stations: gpd.GeoDataFrame, standard_aki: float = 87.0) -> gpd.GeoDataFrame:
+    """Plain-language columns for the public map: what is sold, which vehicles it suits at this
+    elevation, what to do when driving down. No enforcement detail."""
+    st = stations.copy()
+    reg = st["regular_aki"].to_numpy(float)
+    grades = []
+    for _, r in st.iterrows():
+        parts = [f"regular {r['regular_aki']:g} AKI"]
+        for col, label in (("midgrade_aki", "mid-grade"), ("premium_aki", "premium")):
+            if col in st.columns and np.isfinite(float(r.get(col, np.nan))):
+                parts.append(f"{label} {float(r[col]):g}")
+        grades.append(", ".join(parts))
+    st["public_sold"] = grades
+    share = (
+        st["regular_share_satisfied_pct"].to_numpy(float)
+        if "regular_share_satisfied_pct" in st
+        else np.full(len(st), np.nan)
+    )
+    suits = []
+    down = []
+    be = (
+        st["regular_break_even_elevation_m"].to_numpy(float)
+        if "regular_break_even_elevation_m" in st
+        else np.full(len(st), np.nan)
+    )
+    for i in range(len(st)):
+        g = reg[i]
+        s_txt = (
+            f"About {share[i]:.0f} in 100 vehicles on the road here run well on this regular "
+            "at this elevation. "
+            if np.isfinite(share[i])
+            else ""
+        )
+        if g < standard_aki:
+            s_txt += (
+                "Older engines gain most from the thin air; modern and turbocharged engines "
+                "gain little or nothing — use the grade your owner's manual names."
+            )
+            d_txt = (
+                f"This {g:g} is sold for high ground. Before a long descent to lower ground, "
+                "towing, or a loaded climb, fill with 87 or the grade your manual names"
+            )
+            d_txt += (
+                f"; below about {_fmt_num(be[i], ' m')} this grade no longer suits most vehicles."
+                if np.isfinite(be[i])
+                else "."
+            )
+        else:
+            s_txt += "This is the usual sea-level regular grade; follow your owner's manual."
+            d_txt = "Regular here is the sea-level grade: no change needed when you drive down."
+        suits.append(s_txt)
+        down.append(d_txt)
+    st["public_suits"] = suits
+    st["public_driving_down"] = down
+    st["regular_grade_label"] = np.where(
+        reg >= standard_aki, "87 or higher", np.where(reg >= 86, "86", "85")
+    )
+    return st
+
+
+def _read_optional(cfg):
+    from pipeline import io
+
+    roads = io.read_vector(cfg.inputs.roads, what="roads") if cfg.inputs.roads else None
+    towns = io.read_vector(cfg.inputs.towns, what="towns") if cfg.inputs.towns else None
+    fz = (
+        io.read_vector(cfg.inputs.fleet_zones, what="fleet zones")
+        if cfg.inputs.fleet_zones
+        else None
+    )
+    return roads, towns, fz
+
+
+def _station_layer(stations, style, popup, name="Stations") -> MapLayer:
+    return MapLayer(
+        name=name,
+        gdf=stations,
+        style=style,
+        popup_fields=_present(stations, popup),
+        tooltip_field="name",
+        point_radius_px=6,
+        searchable_fields=tuple(c for c in ("station_id", "name") if c in stations.columns),
+    )
+
+
+def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected) -> dict[str, str]:
+    """The three maps: ``map.html`` (regulators), ``map_distributor.html``,
+    ``map_public.html``; one builder, one look, cautions on each."""
+    cfg = ctx.config
+    roads, towns, fleet_zones = _read_optional(cfg)
+    corridors = up.get("corridors", {}).get("corridors")
+    plans = up.get("plans", {})
+    basemap = basemap_of(up.get("terrain", {}))
+    note = f"Run date {ctx.today.isoformat()} · altigrade"
+    maps: dict[str, str] = {}
+
+    # regulators
+    reg = station_map_spec(
+        stations,
+        zones=zones,
+        roads=roads,
+        towns=towns,
+        rejected=rejected,
+        corridors=corridors,
+        basemap=basemap,
+        title=f"Inspection planning map — {cfg.name}",
+        subtitle="Verdicts, justified-AKI zones, descent corridors, priorities "
+        "and next inspection routes",
+        generated_note=note,
+    )
+    layers = list(reg.layers)
+    routes = plans.get("inspection_routes")
+    if isinstance(routes, gpd.GeoDataFrame) and len(routes):
+        routes = routes.assign(day_label=[f"day {int(d)}" for d in routes["day"]])
+        day_colors = {
+            f"day {d}": c
+            for d, c in zip(
+                sorted({int(x) for x in routes["day"]}),
+                ("#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9", "#000000") * 10,
+                strict=False,
+            )
+        }
+        layers.insert(
+            len(layers) - 2,
+            MapLayer(
+                name="Inspection routes",
+                gdf=routes,
+                visible=False,
+                style=CategoryStyle(column="day_label", colors=day_colors),
+                popup_fields=_present(
+                    routes,
+                    (
+                        ("day", "Day"),
+                        ("base_id", "Base"),
+                        ("n_stops", "Stops"),
+                        ("length_km", "Length [km]"),
+                    ),
+                ),
+            ),
+        )
+    bases = plans.get("inspection_bases")
+    if isinstance(bases, gpd.GeoDataFrame) and len(bases):
+        layers.insert(
+            len(layers) - 1,
+            MapLayer(
+                name="Inspector bases",
+                gdf=bases,
+                popup_fields=_present(bases, (("base_id", "Base"),)),
+                tooltip_field="name",
+                point_radius_px=8,
+            ),
+        )
+    layers = [
+        _station_layer(stations, VERDICT_STYLE, REGULATOR_POPUP) if lyr.name == "Stations" else lyr
+        for lyr in layers
+    ]
+    maps["map.html"] = build_map_html(
+        MapSpec(
+            title=reg.title,
+            subtitle=reg.subtitle,
+            layers=layers,
+            cautions=CAUTIONS,
+            basemap=basemap,
+            generated_note=note,
+        )
+    )
+
+    # distributors
+    if "regular_change" in stations.columns:
+        sp = plans.get("supply_plan")
+        st = stations
+        if isinstance(sp, gpd.GeoDataFrame) and "reason" in sp.columns:
+            st = stations.assign(
+                supply_reason=stations["station_id"].map(sp.set_index("station_id")["reason"])
+            )
+        dl: list[MapLayer] = []
+        if fleet_zones is not None:
+            dl.append(
+                MapLayer(
+                    name="Supply areas (fleet zones)",
+                    gdf=fleet_zones,
+                    popup_fields=_present(fleet_zones, (("zone_name", "Area"),)),
+                    tooltip_field="zone_name" if "zone_name" in fleet_zones else None,
+                    fill_opacity=0.08,
+                )
+            )
+        if roads is not None:
+            dl.append(road_layer(roads))
+        cl = corridor_layer(corridors)
+        if cl is not None:
+            dl.append(cl)
+        dl.append(_station_layer(st, CHANGE_STYLE, PLAN_POPUP))
+        maps["map_distributor.html"] = build_map_html(
+            MapSpec(
+                title=f"Grade-supply plan — {cfg.name}",
+                subtitle="Which stations need which regular grade, why, and what it costs",
+                layers=dl,
+                cautions=CAUTIONS,
+                basemap=basemap,
+                generated_note=note,
+            )
+        )
+
+    # public
+    pub = public_texts(stations, cfg.corridors.model.sea_level_standard_aki)
+    pl: list[MapLayer] = []
+    if zones is not None and len(zones):
+        pl.append(
+            MapLayer(
+                name="Regular most vehicles need here",
+                gdf=zones,
+                style=_zone_style(zones),
+                tooltip_field="band_label",
+                popup_fields=_present(zones, (("band_label", "Regular needed [AKI]"),)),
+                fill_opacity=0.25,
+            )
+        )
+    if roads is not None:
+        pl.append(road_layer(roads))
+    if towns is not None and len(towns):
+        pl.append(town_layer(towns, visible=True))
+    pl.append(_station_layer(pub, GRADE_STYLE, PUBLIC_POPUP, name="Fuel stations"))
+    maps["map_public.html"] = build_map_html(
+        MapSpec(
+            title=f"Gasoline grades at altitude — {cfg.name}",
+            subtitle="What regular is sold where, which vehicles it suits, and what to do when "
+            "driving down",
+            layers=pl,
+            cautions=CAUTIONS,
+            basemap=basemap,
+            generated_note=note,
+        )
+    )
+    return maps
 
 
 def station_map_html(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected) -> str:

@@ -22,6 +22,7 @@ from pipeline.config import RunConfig
 from pipeline.corridor_stage import corridors_stage
 from pipeline.errors import InputFileError
 from pipeline.ingest import validate_stations
+from pipeline.plan_stage import plans_stage
 from pipeline.runner import RunResult, Stage, StageContext, run_stages
 
 __all__ = ["STAGES", "run", "require_columns"]
@@ -377,6 +378,10 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     corridors = up.get("corridors", {}).get("corridors")
     if corridors is not None:
         layers["corridors"] = corridors
+    plans = up.get("plans", {})
+    for name in ("inspection_priorities", "inspection_routes", "inspection_bases", "supply_plan"):
+        if isinstance(plans.get(name), gpd.GeoDataFrame):
+            layers[name] = plans[name]
     out = ctx.out_dir
     crs = ctx.config.outputs.crs
     io.write_gpkg_layers(out / "altigrade.gpkg", layers, crs)
@@ -385,10 +390,29 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         pd.DataFrame(stations.drop(columns=stations.geometry.name)).to_csv(index=False),
     )
     outputs = ["altigrade.gpkg", "stations.csv"]
-    html = _station_map(ctx, up, stations, zones, rejected)
-    if html is not None:
-        io.write_text_atomic(out / "map.html", html)
-        outputs.append("map.html")
+    for name in (
+        "inspection_priorities",
+        "inspection_plan",
+        "inspection_unplanned",
+        "supply_plan",
+        "supply_totals",
+        "supply_grade_volumes",
+    ):
+        table = plans.get(name)
+        if table is None:
+            continue
+        frame = (
+            pd.DataFrame(table.drop(columns=table.geometry.name))
+            if isinstance(table, gpd.GeoDataFrame)
+            else table
+        )
+        io.write_text_atomic(out / f"{name}.csv", frame.to_csv(index=False))
+        outputs.append(f"{name}.csv")
+    from pipeline.maps import audience_maps
+
+    for fname, html in audience_maps(ctx, up, stations, zones, rejected).items():
+        io.write_text_atomic(out / fname, html)
+        outputs.append(fname)
     report = _report_html(ctx, stations, rejected)
     io.write_text_atomic(out / "report.html", report)
     outputs.append("report.html")
@@ -416,13 +440,7 @@ def _report_html(ctx: StageContext, stations, rejected) -> str:
     )
 
 
-def _station_map(ctx, up, stations, zones, rejected) -> str | None:
-    from pipeline.maps import station_map_html
-
-    return station_map_html(ctx, up, stations, zones, rejected)
-
-
-_LAST_STATION_STAGE = "corridors"
+_LAST_STATION_STAGE = "plans"
 
 
 def _inputs(cfg: RunConfig) -> list[Path]:
@@ -529,6 +547,27 @@ STAGES: list[Stage] = [
             "pipeline.corridors",
             "pipeline.requirement",
             "pipeline.terrain_routes",
+        ),
+    ),
+    Stage(
+        "plans",
+        plans_stage,
+        needs=("corridors",),
+        params=lambda c: {
+            "inspection": c.inspection.model_dump(mode="json"),
+            "supply": c.supply.model_dump(mode="json"),
+            "corridors": c.corridors.model_dump(mode="json"),
+            "today_matters": True,
+        },
+        input_files=lambda c: (
+            _dem_files(c)
+            + [p for p in (c.inputs.roads, c.inputs.towns, c.inputs.inspector_bases) if p]
+        ),
+        modules=(
+            "pipeline.plan_stage",
+            "pipeline.inspection",
+            "pipeline.supply",
+            "pipeline.roadgraph",
         ),
     ),
 ]
