@@ -23,7 +23,7 @@ import pandas as pd  # noqa: E402
 from pipeline.cautions import CAUTIONS  # noqa: E402
 from pipeline.requirement import DesignDay, FleetModelParams, requirement_curve  # noqa: E402
 
-__all__ = ["build_report_html", "requirement_figure", "Section"]
+__all__ = ["build_report_html", "requirement_figure", "decision_sections", "Section"]
 
 _OKABE_ITO = ("#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9", "#000000")
 _VERDICT_COLORS = {
@@ -197,6 +197,156 @@ def _table(df: pd.DataFrame, columns: Sequence[tuple[str, str]], max_rows: int =
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>{more}"
 
 
+def _corridor_figure(corridors: pd.DataFrame) -> str:
+    top = corridors.sort_values("risk_l_aki_per_month", ascending=False).head(15)
+    fig, ax = plt.subplots(figsize=(6.4, 3.4))
+    labels = [f"edge {int(e)} · {d}" for e, d in zip(top["edge"], top["direction"], strict=True)]
+    ax.barh(labels[::-1], top["risk_l_aki_per_month"].to_numpy()[::-1], color="#b5367a")
+    ax.set_xlabel("Deficit risk [L·AKI/month]")
+    ax.set_title("Top descent-corridor road sections by risk", fontsize=10)
+    ax.tick_params(axis="y", labelsize=7)
+    return _png(fig)
+
+
+def decision_sections(
+    *, stations: pd.DataFrame, corridors: pd.DataFrame | None, plans: Mapping[str, Any]
+) -> list[Section]:
+    """Report sections for the decisions: corridors, inspection priorities and plan, supply."""
+    out: list[Section] = []
+    if corridors is not None and len(corridors):
+        cols = (
+            ("edge", "Edge"),
+            ("direction", "Direction"),
+            ("risk_l_aki_per_month", "Risk [L·AKI/month]"),
+            ("flow_l_per_month", "Sub-standard fuel [L/month]"),
+            ("deficit_aki", "Deficit [AKI]"),
+            ("required_aki", "Fleet needs [AKI]"),
+            ("sources_count", "Sources"),
+            ("length_m", "Length [m]"),
+        )
+        exp = stations[stations.get("export_risk_l_aki_per_month", pd.Series(dtype=float)) > 0]
+        exp = exp.sort_values("export_risk_l_aki_per_month", ascending=False)
+        out.append(
+            Section(
+                "Descent corridors",
+                _corridor_figure(pd.DataFrame(corridors))
+                + _table(
+                    pd.DataFrame(corridors).sort_values("risk_l_aki_per_month", ascending=False),
+                    cols,
+                    15,
+                )
+                + "<h3>Stations exporting the most deficit risk</h3>"
+                + _table(
+                    exp,
+                    (
+                        ("station_id", "Station"),
+                        ("name", "Name"),
+                        ("elevation_m", "Elevation [m]"),
+                        ("regular_aki", "Regular [AKI]"),
+                        ("export_risk_l_aki_per_month", "Export risk [L·AKI/month]"),
+                        ("fuel_share_in_deficit", "Share of fuel in deficit"),
+                        ("corridor_required_aki", "Corridors need [AKI]"),
+                    ),
+                    15,
+                ),
+                lead="Where sub-standard regular from high stations is driven down into lowland, "
+                "loaded and uphill driving: flow × fuel still in the tank × requirement deficit.",
+            )
+        )
+    pri = plans.get("inspection_priorities")
+    if pri is not None and len(pri):
+        out.append(
+            Section(
+                "Inspection priorities",
+                _table(
+                    pd.DataFrame(pri),
+                    (
+                        ("rank", "Rank"),
+                        ("station_id", "Station"),
+                        ("name", "Name"),
+                        ("score", "Score"),
+                        ("score_verdict", "Verdict pts"),
+                        ("score_deficit", "Deficit pts"),
+                        ("score_export_risk", "Export pts"),
+                        ("score_days_since_inspection", "Overdue pts"),
+                        ("reason", "Why"),
+                    ),
+                    20,
+                ),
+                lead="Ranked by a transparent score; each component's points are shown. Weights are "
+                "planning choices in the config.",
+            )
+        )
+    plan = plans.get("inspection_plan")
+    if plan is not None and len(plan):
+        visits = plan[plan["kind"] == "visit"]
+        days = plan.groupby("day")["cumulative_km"].max()
+        out.append(
+            Section(
+                "Inspection plan",
+                f"<p>{len(visits)} inspections over {plan['day'].nunique()} days; "
+                f"{days.sum():,.0f} km driven in all.</p>"
+                + _table(
+                    pd.DataFrame(plan),
+                    (
+                        ("day", "Day"),
+                        ("base_name", "Base"),
+                        ("stop_order", "Stop"),
+                        ("station_id", "Station"),
+                        ("name", "Name"),
+                        ("leg_km", "Leg [km]"),
+                        ("cumulative_km", "Day total [km]"),
+                        ("reason", "Why"),
+                    ),
+                    60,
+                ),
+                lead="Stations picked by priority within the budget; each day ordered into a road "
+                "route from its base (exact for short days, nearest-neighbour + 2-opt otherwise).",
+            )
+        )
+    totals = plans.get("supply_totals")
+    if totals is not None and len(totals):
+        sp = plans.get("supply_plan")
+        raised = pd.DataFrame(sp)[pd.DataFrame(sp)["change"] == "raise"] if sp is not None else None
+        body = _table(
+            pd.DataFrame(totals),
+            (
+                ("grouping", "By"),
+                ("group", "Group"),
+                ("stations", "Stations"),
+                ("raise", "Raise"),
+                ("keep", "Keep"),
+                ("regular_l_per_month", "Regular [L/month]"),
+                ("raised_regular_l_per_month", "Raised [L/month]"),
+                ("incremental_cost_usd_per_month", "Extra cost [USD/month]"),
+            ),
+            30,
+        )
+        if raised is not None and len(raised):
+            body += "<h3>Stations to move up</h3>" + _table(
+                raised.sort_values("incremental_cost_usd_per_month", ascending=False),
+                (
+                    ("station_id", "Station"),
+                    ("name", "Name"),
+                    ("regular_aki", "Today [AKI]"),
+                    ("recommended_regular_aki", "Recommended [AKI]"),
+                    ("driver", "Set by"),
+                    ("incremental_cost_usd_per_month", "Extra cost [USD/month]"),
+                ),
+                40,
+            )
+        out.append(
+            Section(
+                "Grade-supply plan",
+                body,
+                lead="Recommended minimum regular = the higher of the station's own "
+                "fleet need and what its descent corridors need; cost at the "
+                "configured price per AKI per litre.",
+            )
+        )
+    return out
+
+
 _CSS = """
 body{font:14px/1.45 system-ui,-apple-system,'Segoe UI',sans-serif;color:#1f2328;max-width:1040px;
 margin:0 auto;padding:24px}
@@ -208,6 +358,7 @@ margin-top:32px}
 table{border-collapse:collapse;width:100%;font-size:12.5px;margin:8px 0}
 th,td{border-bottom:1px solid #e1e4e8;padding:3px 6px;text-align:left;vertical-align:top;
 max-width:360px;overflow-wrap:anywhere}
+h3{font-size:15px;margin-top:18px}
 th{background:#f6f8fa}.note{color:#57606a;font-size:12px}
 img.plot{max-width:100%;height:auto;display:block;margin:8px 0}
 pre{background:#f6f8fa;padding:10px;overflow:auto;font-size:11.5px;max-height:420px}
@@ -263,7 +414,24 @@ def build_report_html(
             "Stations by verdict",
             _verdict_figure(stations)
             + _table(
-                stations.sort_values(["verdict", "station_id"]),
+                stations.assign(
+                    _order=stations["verdict"]
+                    .map(
+                        {
+                            v: i
+                            for i, v in enumerate(
+                                (
+                                    "failed_field_test",
+                                    "not_permitted",
+                                    "permitted_not_justified",
+                                    "not_assessed",
+                                    "meets_rule_and_justified",
+                                )
+                            )
+                        }
+                    )
+                    .fillna(9)
+                ).sort_values(["_order", "station_id"]),
                 (
                     ("station_id", "Station"),
                     ("name", "Name"),

@@ -413,11 +413,22 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     for fname, html in audience_maps(ctx, up, stations, zones, rejected).items():
         io.write_text_atomic(out / fname, html)
         outputs.append(fname)
-    report = _report_html(ctx, stations, rejected)
+    ctx.counts["_upstream"] = up
+    ctx.counts["_plans_for_report"] = plans
+    try:
+        report = _report_html(ctx, stations, rejected)
+    finally:
+        ctx.counts.pop("_upstream", None)
+        ctx.counts.pop("_plans_for_report", None)
     io.write_text_atomic(out / "report.html", report)
     outputs.append("report.html")
     ctx.counts["outputs"] = outputs
     return {"stations": stations, "rejected_stations": rejected}
+
+
+def ctx_up_get(ctx: StageContext, stage: str, name: str):
+    """An artefact of an upstream stage, as handed to the publish stage (or None)."""
+    return ctx.counts.get("_upstream", {}).get(stage, {}).get(name)
 
 
 def _report_html(ctx: StageContext, stations, rejected) -> str:
@@ -428,7 +439,15 @@ def _report_html(ctx: StageContext, stations, rejected) -> str:
         "config": cfg.model_dump(mode="json"),
         "inputs_sha256": ctx.counts.get("inputs_sha256"),
     }
+    from pipeline.report import decision_sections
+
+    extra = decision_sections(
+        stations=pd.DataFrame(stations.drop(columns=stations.geometry.name)),
+        corridors=ctx_up_get(ctx, "corridors", "corridors"),
+        plans=ctx.counts.get("_plans_for_report", {}),
+    )
     return build_report_html(
+        extra_sections=extra,
         title=f"altigrade report — {cfg.name}",
         stations=pd.DataFrame(stations.drop(columns=stations.geometry.name)),
         rejected=pd.DataFrame(rejected.drop(columns=rejected.geometry.name)),
