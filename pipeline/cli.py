@@ -1,4 +1,4 @@
-"""Command line: ``altigrade demo | run | validate``.
+"""Command line: ``altigrade demo | run | validate | compare``.
 
 Exit status: 0 success; 2 bad input or configuration (one clear message, no traceback);
 1 internal error.
@@ -92,6 +92,21 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("config", type=Path, help="run config (TOML)")
     r.add_argument(
         "--out", type=Path, default=None, help="output folder (default: outputs/<run name>)"
+    )
+
+    c = sub.add_parser(
+        "compare",
+        help="what changes between two finished runs (verdicts, plan, cost)",
+        description="Compare two run folders, e.g. today's rule against a proposed one, or "
+        "today's fleet against a shifted one: verdict changes, plan and cost deltas, and a map "
+        "of the stations that change.",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    c.add_argument("run_a", type=Path, help="first run folder (the baseline)")
+    c.add_argument("run_b", type=Path, help="second run folder")
+    c.add_argument(
+        "--out", type=Path, default=None, help="output folder (default: outputs/compare-<A>-vs-<B>)"
     )
 
     v = sub.add_parser(
@@ -190,6 +205,8 @@ def _dispatch(args, con: _Console) -> int:
     from pipeline.config import load_config
     from pipeline.stages import run, validate_inputs
 
+    if args.command == "compare":
+        return _compare(args, con)
     if args.command == "validate":
         cfg = load_config(args.config)
         report = validate_inputs(cfg)
@@ -220,6 +237,60 @@ def _dispatch(args, con: _Console) -> int:
     else:
         result = run(cfg, out, progress=update, log=con.detail)
     _summary(con, result)
+    return 0
+
+
+def _compare(args, con: _Console) -> int:
+    from pipeline import io
+    from pipeline.compare import compare_runs, comparison_report_html, read_run
+    from pipeline.webmap import MapLayer, MapSpec, build_map_html
+
+    a, b = read_run(args.run_a), read_run(args.run_b)
+    cmp = compare_runs(a, b)
+    out = args.out or Path("outputs") / f"compare-{args.run_a.name}-vs-{args.run_b.name}"
+    out.mkdir(parents=True, exist_ok=True)
+    io.write_gpkg_layers(out / "compare.gpkg", {"station_changes": cmp.stations}, "EPSG:4326")
+    io.write_text_atomic(
+        out / "station_changes.csv", cmp.stations.drop(columns="geometry").to_csv(index=False)
+    )
+    io.write_text_atomic(
+        out / "compare.html", comparison_report_html(cmp, args.run_a.name, args.run_b.name)
+    )
+    from pipeline.cautions import CAUTIONS
+    from pipeline.maps import VERDICT_STYLE
+
+    changed = cmp.stations[cmp.stations["changed"] & cmp.stations.geometry.notna()]
+    if len(changed):
+        style = (
+            VERDICT_STYLE.__class__(
+                column="verdict_b", colors=VERDICT_STYLE.colors, labels=VERDICT_STYLE.labels
+            )
+            if "verdict_b" in changed
+            else None
+        )
+        spec = MapSpec(
+            title=f"Stations that change: {args.run_a.name} → {args.run_b.name}",
+            subtitle="Colour: verdict in the second run; the popup says what changes",
+            layers=[
+                MapLayer(
+                    name="Changed stations",
+                    gdf=changed,
+                    style=style,
+                    popup_fields=(("station_id", "Station"), ("change", "What changes")),
+                    tooltip_field="name",
+                    searchable_fields=("station_id", "name"),
+                )
+            ],
+            cautions=CAUTIONS,
+        )
+        io.write_text_atomic(out / "compare_map.html", build_map_html(spec))
+    n = int(cmp.stations["changed"].sum())
+    con.info(f"{n} of {len(cmp.stations)} stations change; see {out / 'compare.html'}")
+    for _, r in cmp.totals.iterrows():
+        con.info(
+            f"  {r['quantity']}: {r['run_a']:,.1f} → {r['run_b']:,.1f} ({r['difference']:+,.1f})"
+        )
+    con.info(CAUTION)
     return 0
 
 

@@ -48,7 +48,7 @@ def read_bases(path) -> pd.DataFrame:
     return out
 
 
-_DECIMALS = {"score": 1, "leg_km": 2, "cumulative_km": 2, "length_km": 2}
+_DECIMALS = {"score": 2, "leg_km": 2, "cumulative_km": 2, "length_km": 2}
 
 
 def _tidy(df: pd.DataFrame) -> pd.DataFrame:

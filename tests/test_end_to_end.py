@@ -31,13 +31,30 @@ def test_geopackage_layers_columns_and_crs(small_demo_run):
     info = pyogrio.read_info(out / "altigrade.gpkg", layer="stations")
     assert CRS.from_user_input(info["crs"]) == CRS.from_epsg(4326)
     cols = set(info["fields"])
-    for c in ("station_id", "name", "elevation_m", "elevation_status", "pressure_kpa",
-              "pressure_psi", "design_temperature_c", "humidity_ratio_g_per_kg", "regular_aki"):
+    for c in (
+        "station_id",
+        "name",
+        "elevation_m",
+        "elevation_status",
+        "pressure_kpa",
+        "pressure_psi",
+        "design_temperature_c",
+        "humidity_ratio_g_per_kg",
+        "regular_aki",
+    ):
         assert c in cols, c
     assert info["geometry_type"] == "Point"
-    for c in ("fleet_zone", "fleet_share_legacy", "justified_aki", "justified_aki_p05",
-              "justified_aki_p95", "regular_share_satisfied_pct", "regular_break_even_elevation_m",
-              "verdict", "verdict_reason"):
+    for c in (
+        "fleet_zone",
+        "fleet_share_legacy",
+        "justified_aki",
+        "justified_aki_p05",
+        "justified_aki_p95",
+        "regular_share_satisfied_pct",
+        "regular_break_even_elevation_m",
+        "verdict",
+        "verdict_reason",
+    ):
         assert c in cols, c
     zinfo = pyogrio.read_info(out / "altigrade.gpkg", layer="justified_zones")
     assert zinfo["features"] >= 2 and "band_label" in zinfo["fields"]
@@ -63,8 +80,15 @@ def test_demo_bad_rows_are_rejected_with_reasons(small_demo_run):
     assert len(bad) >= 7
     assert (bad["reject_reason"].str.len() > 5).all()
     text = " | ".join(bad["reject_reason"])
-    for fragment in ("missing lat", "not a number", "AKI × 10", "volume_l_per_month", "conflicting",
-                     "outside the DEM", "after the run date"):
+    for fragment in (
+        "missing lat",
+        "not a number",
+        "AKI × 10",
+        "volume_l_per_month",
+        "conflicting",
+        "outside the DEM",
+        "after the run date",
+    ):
         assert fragment in text, fragment
 
 
@@ -107,6 +131,45 @@ def test_corridors_layer_and_station_export_columns(small_demo_run):
     assert sub["corridor_required_aki"].between(85, 87).all()
 
 
+def test_decision_outputs_answer_the_two_questions(small_demo_run):
+    """Issue D: "which stations do we inspect next week, in what order?" and "which stations
+    must move to 87 and what does it cost?" — answered from the output files alone."""
+    import pandas as pd
+
+    out, _ = small_demo_run
+    plan = pd.read_csv(out / "inspection_plan.csv")
+    visits = plan[plan["kind"] == "visit"]
+    assert len(visits) and visits["station_id"].is_unique
+    assert {"day", "stop_order", "leg_km", "cumulative_km", "reason"} <= set(plan.columns)
+    for _, day in visits.groupby("day"):
+        assert list(day["stop_order"]) == sorted(day["stop_order"])
+    pri = pd.read_csv(out / "inspection_priorities.csv")
+    assert list(pri["rank"]) == sorted(pri["rank"])
+    comp = [c for c in pri.columns if c.startswith("score_")]
+    assert (pri[comp].sum(axis=1) - pri["score"]).abs().max() < 0.05
+    sp = pd.read_csv(out / "supply_plan.csv")
+    raise_ = sp[sp["change"] == "raise"]
+    assert (raise_["recommended_regular_aki"] > raise_["regular_aki"]).all()
+    tot = pd.read_csv(out / "supply_totals.csv")
+    all_row = tot[tot["grouping"] == "all"].iloc[0]
+    assert all_row["incremental_cost_usd_per_month"] == pytest.approx(
+        sp["incremental_cost_usd_per_month"].fillna(0).sum(), rel=1e-9
+    )
+    for f in ("map.html", "map_distributor.html", "map_public.html", "report.html"):
+        assert (out / f).is_file()
+
+
+def test_compare_two_runs(small_demo_run, tmp_path):
+    out, _ = small_demo_run
+    proc = run_cli("compare", str(out), str(out), "--out", str(tmp_path / "cmp"))
+    assert proc.returncode == 0, proc.stderr
+    assert "0 of" in proc.stdout
+    for f in ("compare.html", "compare.gpkg", "station_changes.csv"):
+        assert (tmp_path / "cmp" / f).is_file()
+    bad = run_cli("compare", str(tmp_path), str(out))
+    assert bad.returncode == 2 and "not an altigrade run folder" in bad.stderr
+
+
 def test_manifest_records_inputs_versions_timings(small_demo_run):
     out, _ = small_demo_run
     m = json.loads((out / "manifest.json").read_text())
@@ -117,8 +180,17 @@ def test_manifest_records_inputs_versions_timings(small_demo_run):
 
 def test_second_run_reuses_unchanged_stages(small_demo_run, demo_cache, tmp_path):
     out, _ = small_demo_run
-    proc = run_cli("demo", "--cells", "250", "--stations", "40", "--out", str(out),
-                   "--cache-dir", str(demo_cache))
+    proc = run_cli(
+        "demo",
+        "--cells",
+        "250",
+        "--stations",
+        "40",
+        "--out",
+        str(out),
+        "--cache-dir",
+        str(demo_cache),
+    )
     assert proc.returncode == 0, proc.stderr
     m = json.loads((out / "manifest.json").read_text())
     assert {"ingest", "terrain", "atmosphere"} <= set(m["stages_reused"])
@@ -128,7 +200,9 @@ def test_validate_command(small_demo_inputs, tmp_path):
     cfg = tmp_path / "run.toml"
     cfg.write_text(
         f'name = "v"\n[inputs]\nstations = "{small_demo_inputs / "stations.csv"}"\n'
-        f'dem = "{small_demo_inputs / "dem.tif"}"\n', encoding="utf-8")
+        f'dem = "{small_demo_inputs / "dem.tif"}"\n',
+        encoding="utf-8",
+    )
     proc = run_cli("validate", str(cfg))
     assert proc.returncode == 0, proc.stderr
     assert "would be rejected" in proc.stdout
