@@ -231,3 +231,21 @@ def test_help_mentions_commands_and_caution():
     assert proc.returncode == 0
     for word in ("demo", "run", "validate", "planning aid"):
         assert word in proc.stdout
+
+
+def test_corridors_without_a_road_layer_use_dem_derived_roads(small_demo_inputs, tmp_path):
+    """Issue C fallback: no road layer → least-cost roads over the DEM carry the corridors."""
+    import json
+
+    d = small_demo_inputs
+    cfg = tmp_path / "noroads.toml"
+    cfg.write_text(
+        f'name = "noroads"\n[inputs]\nstations = "{d / "stations.csv"}"\ndem = "{d / "dem.tif"}"\n'
+        f'towns = "{d / "towns.gpkg"}"\n[corridors]\nsnap_distance_m = 5000.0\n'
+        "fallback_grid_cells = 120\n[zones]\nenabled = false\n", encoding="utf-8")
+    proc = run_cli("run", str(cfg), "--out", str(tmp_path / "o"))
+    assert proc.returncode == 0, proc.stderr
+    m = json.loads((tmp_path / "o" / "manifest.json").read_text())
+    assert m["counts"]["road_source"].startswith("derived from the DEM")
+    st = pyogrio.read_dataframe(tmp_path / "o" / "altigrade.gpkg", layer="stations")
+    assert (st["corridor_status"] != "not_on_road_network").any()
