@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import pytest
-
 from browser_support import launch_browser, open_local_html, require_browser, save_screenshot
 
 pytestmark = pytest.mark.browser

@@ -7,9 +7,8 @@ import json
 
 import pyogrio
 import pytest
-from pyproj import CRS
-
 from conftest import run_cli
+from pyproj import CRS
 
 
 def _csv_rows(path) -> int:
