@@ -62,7 +62,7 @@ _AKI_SLACK = 1e-6
 
 
 class _RuleBase(BaseModel):
-    model_config = ConfigDict(frozen=True, extra="forbid")
+    model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
 
     name: str = Field(min_length=1, description="Short name shown in reports.")
     description: str = Field("", description="Free text shown in reports.")

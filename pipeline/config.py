@@ -38,7 +38,7 @@ __all__ = [
 
 
 class _Frozen(BaseModel):
-    model_config = ConfigDict(frozen=True, extra="forbid")
+    model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
 
 
 class InputsConfig(_Frozen):
@@ -283,10 +283,17 @@ def _explain(err: ValidationError, model: type[BaseModel], source: str) -> str:
     more = len(err.errors()) - 8
     if more > 0:
         lines.append(f"... and {more} more")
-    return f"{source}: " + "; ".join(lines)
+    return _printable(f"{source}: " + "; ".join(lines))
 
 
-def _resolve_paths(data: dict[str, Any], base: Path, demo_dir: Path | None) -> dict[str, Any]:
+def _printable(text: str) -> str:
+    """Control and other non-printing characters (from unknown keys) as escapes: one line."""
+    return "".join(ch if ch.isprintable() else ascii(ch)[1:-1] for ch in text)
+
+
+def _resolve_paths(
+    data: dict[str, Any], base: Path, demo_dir: Path | None, source: str = "<config>"
+) -> dict[str, Any]:
     comp = data.get("compliance")
     if isinstance(comp, dict) and isinstance(comp.get("rule_file"), str):
         rp = Path(comp["rule_file"]).expanduser()
@@ -304,7 +311,7 @@ def _resolve_paths(data: dict[str, Any], base: Path, demo_dir: Path | None) -> d
         if value.startswith("{demo}"):
             if demo_dir is None:
                 raise ConfigError(
-                    f"key 'inputs.{key}' uses the {{demo}} folder, which only "
+                    f"{source}: key 'inputs.{key}' uses the {{demo}} folder, which only "
                     "`altigrade demo` provides"
                 )
             out[key] = str(demo_dir / value.removeprefix("{demo}").lstrip("/"))
@@ -320,7 +327,7 @@ def parse_config(
     """Validate a config mapping (as read from TOML) into a :class:`RunConfig`."""
     if not isinstance(data, dict):
         raise ConfigError(f"{source}: the config must be a table of keys")
-    data = _resolve_paths(data, base_dir, demo_dir)
+    data = _resolve_paths(data, base_dir, demo_dir, source)
     try:
         cfg = RunConfig.model_validate(data)
     except ValidationError as err:

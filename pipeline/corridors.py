@@ -123,7 +123,7 @@ class CorridorParams(BaseModel):
     Every default is a planning choice; the source of each is given beside it.
     """
 
-    model_config = ConfigDict(frozen=True, extra="forbid")
+    model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
 
     tank_range_km: float = Field(
         500.0,

@@ -164,7 +164,7 @@ class PriorityWeights(BaseModel):
     defaults total 100, so with them a contribution is simply weight × n.
     """
 
-    model_config = ConfigDict(frozen=True, extra="forbid")
+    model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
 
     weight_verdict: float = Field(30.0, ge=0, description="Weight of the verdict [points].")
     weight_deficit: float = Field(
@@ -256,7 +256,7 @@ class PriorityWeights(BaseModel):
 class InspectionPlanParams(BaseModel):
     """Budget and routing options of an inspection plan (defaults: invented planning choices)."""
 
-    model_config = ConfigDict(frozen=True, extra="forbid")
+    model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
 
     inspections_per_day: int = Field(6, ge=1, description="Stations one team visits a day.")
     days: int = Field(5, ge=1, description="Inspection days in the plan (all bases together).")

@@ -102,7 +102,7 @@ _CHUNK_ELEMENTS = 200_000
 
 
 class _Frozen(BaseModel):
-    model_config = ConfigDict(frozen=True, extra="forbid")
+    model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
 
 
 # =========================================================================== parameter models

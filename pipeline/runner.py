@@ -25,9 +25,11 @@ from typing import Any
 
 import geopandas as gpd
 import pandas as pd
+from rasterio.errors import RasterioIOError
 
 from pipeline import __version__
 from pipeline.config import RunConfig
+from pipeline.errors import InputFileError
 from pipeline.io import atomic_path, file_sha256, write_text_atomic
 
 __all__ = ["Stage", "StageContext", "RunResult", "run_stages", "Progress"]
@@ -204,7 +206,13 @@ def run_stages(
                 pass  # a damaged cache entry is recomputed
         progress(stage.name, 0.0)
         before = dict(counts)
-        result = stage.func(ctx, {n: artefacts[n] for n in stage.needs})
+        try:
+            result = stage.func(ctx, {n: artefacts[n] for n in stage.needs})
+        except RasterioIOError as exc:  # a block GDAL cannot decode: the file is damaged
+            raise InputFileError(
+                f"{config.inputs.dem}: cannot read the raster (stage {stage.name}); the file "
+                f"may be damaged: copy or download it again ({' '.join(str(exc).split())})"
+            ) from None
         artefacts[stage.name] = result
         if stage.cacheable:
             if key_file.exists():

@@ -70,6 +70,16 @@ def _terrain(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
             st["lon"].to_numpy(float), st["lat"].to_numpy(float), "EPSG:4326", ds.crs
         )
         res = terrain.sample_dem(ds, x, y)
+        # Where would each station fall with lon and lat swapped? (for the reject reason)
+        sx, sy = terrain.transform_points(
+            st["lat"].to_numpy(float), st["lon"].to_numpy(float), "EPSG:4326", ds.crs
+        )
+        b = ds.bounds
+        with np.errstate(invalid="ignore"):
+            swapped_inside = (
+                (np.abs(st["lon"].to_numpy(float)) <= 90)
+                & (sx >= b.left) & (sx <= b.right) & (sy >= b.bottom) & (sy <= b.top)
+            )  # fmt: skip
         basemap = _basemap(ds, ctx)
         dem_info = {
             "crs": ds.crs.to_string(),
@@ -83,6 +93,14 @@ def _terrain(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     st["dem_y"] = y
     st["elevation_m"] = np.round(res.value, 2)
     st["elevation_status"] = res.status
+    # A DEM value no terrain has (e.g. -9999 where nodata is not declared) is not an elevation.
+    from pipeline.ingest import NUMERIC_RANGES
+
+    z_lo, z_hi = NUMERIC_RANGES["elevation_m"]
+    z = st["elevation_m"].to_numpy(float)
+    implausible = np.isfinite(z) & ((z < z_lo) | (z > z_hi))
+    st.loc[implausible, "elevation_status"] = "implausible_dem_value"
+    st.loc[implausible, "elevation_m"] = np.nan
     ctx.counts["dem"] = dem_info
     ctx.counts["dem_blocks_read"] = res.blocks_read
     ctx.counts["elevation_status"] = {
@@ -96,10 +114,18 @@ def _terrain(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
             terrain.STATUS_NODATA: "DEM has no data at the station",
             terrain.STATUS_BAD_COORD: "coordinates cannot be placed on the DEM",
         }
-        reasons = [
-            f"{why.get(s, s)} ({ctx.config.inputs.dem.name})"
-            for s in st.loc[unplaced, "elevation_status"]
-        ]
+        reasons = []
+        for i in np.flatnonzero(unplaced):
+            s = st["elevation_status"].iloc[i]
+            text = why.get(s, s)
+            if implausible[i]:
+                text = (
+                    f"DEM value {z[i]:g} m is not a plausible elevation ({z_lo:g}–{z_hi:g} m; "
+                    "nodata not declared in the DEM?)"
+                )
+            elif s == terrain.STATUS_OUTSIDE and swapped_inside[i]:
+                text += "; with lon and lat swapped it would lie inside: lon/lat look swapped"
+            reasons.append(f"{text} ({ctx.config.inputs.dem.name})")
         rejected = _as_rejected(
             st[unplaced].drop(columns=["dem_x", "dem_y", "elevation_m"]), reasons
         )
@@ -384,12 +410,11 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
             layers[name] = plans[name]
     out = ctx.out_dir
     crs = ctx.config.outputs.crs
-    io.write_gpkg_layers(out / "altigrade.gpkg", layers, crs)
-    io.write_text_atomic(
-        out / "stations.csv",
-        pd.DataFrame(stations.drop(columns=stations.geometry.name)).to_csv(index=False),
-    )
-    outputs = ["altigrade.gpkg", "stations.csv"]
+    # Build every output first; only then replace the previous ones, so that an input found
+    # unusable while drawing (a missing roads file, say) leaves the folder as it was.
+    texts: dict[str, str] = {
+        "stations.csv": io.csv_text(pd.DataFrame(stations.drop(columns=stations.geometry.name)))
+    }
     for name in (
         "inspection_priorities",
         "inspection_plan",
@@ -406,13 +431,10 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
             if isinstance(table, gpd.GeoDataFrame)
             else table
         )
-        io.write_text_atomic(out / f"{name}.csv", frame.to_csv(index=False))
-        outputs.append(f"{name}.csv")
+        texts[f"{name}.csv"] = io.csv_text(frame)
     from pipeline.maps import audience_maps
 
-    for fname, html in audience_maps(ctx, up, stations, zones, rejected).items():
-        io.write_text_atomic(out / fname, html)
-        outputs.append(fname)
+    texts.update(audience_maps(ctx, up, stations, zones, rejected))
     ctx.counts["_upstream"] = up
     ctx.counts["_plans_for_report"] = plans
     try:
@@ -420,8 +442,11 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     finally:
         ctx.counts.pop("_upstream", None)
         ctx.counts.pop("_plans_for_report", None)
-    io.write_text_atomic(out / "report.html", report)
-    outputs.append("report.html")
+    texts["report.html"] = report
+    io.write_gpkg_layers(out / "altigrade.gpkg", layers, crs)
+    for fname, text in texts.items():
+        io.write_text_atomic(out / fname, text)
+    outputs = ["altigrade.gpkg", *texts]
     ctx.counts["outputs"] = outputs
     return {"stations": stations, "rejected_stations": rejected}
 
@@ -614,6 +639,7 @@ def run(
     """
     out = Path(out_dir)
     _check_out_dir(out)
+    _check_inputs_not_in(out, config)
     today = today or dt.date.today()
     result = run_stages(
         [*STAGES, _publish_stage()], config, out, today=today, progress=progress, log=log
@@ -621,6 +647,24 @@ def run(
     result.manifest["outputs"] = result.manifest["counts"].pop("outputs", []) + ["manifest.json"]
     io.write_text_atomic(out / "manifest.json", json.dumps(result.manifest, indent=2, default=str))
     return result
+
+
+def _check_inputs_not_in(out: Path, config: RunConfig) -> None:
+    """Outputs have fixed names (stations.csv, map.html, ...): refuse an output folder that
+    holds an input file, which the run could overwrite."""
+    from pipeline.errors import OutputError
+
+    here = out.resolve()
+    paths = [v for v in config.inputs.model_dump().values() if isinstance(v, Path)]
+    rule = getattr(getattr(config, "compliance", None), "rule_file", None)
+    if rule is not None:
+        paths.append(rule)
+    for p in paths:
+        if p.exists() and p.resolve().parent == here:
+            raise OutputError(
+                f"{out}: the output folder holds the input {p.name}; the outputs would "
+                "overwrite inputs there: choose another --out"
+            )
 
 
 def _check_out_dir(out: Path) -> None:

@@ -74,7 +74,7 @@ class SupplyError(AltigradeError, ValueError):
 class SupplyParams(BaseModel):
     """Parameters of the grade-supply plan (defaults: planning choices, sources as noted)."""
 
-    model_config = ConfigDict(frozen=True, extra="forbid")
+    model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
 
     cost_usd_per_l_per_aki: float = Field(
         0.025,

@@ -671,14 +671,16 @@ class _Raw(Element):
 
 
 class _PageBody(MacroElement):
-    """Side panel (title, search, legend, cautions) and the JSON data block."""
+    """Side panel (title, search, legend, cautions), the JSON data block, and the script that
+    starts the runtime.
+
+    The panel and the data are added as raw text, never through a macro: branca turns the
+    output of a macro into a new Jinja template and renders it, so data passed through a macro
+    would be evaluated as template code (``{{ ... }}`` in a station name runs Python).
+    """
 
     _template = Template(
         """
-        {% macro html(this, kwargs) %}
-        {{ this.panel_html }}
-        <script type="application/json" id="altigrade-data">{{ this.data_json }}</script>
-        {% endmacro %}
         {% macro script(this, kwargs) %}
             document.body.className = "ag-body";
             document.getElementById({{ this.map_name|tojson }}).className += " ag-map";
@@ -701,6 +703,11 @@ class _PageBody(MacroElement):
         self.data_json = data_json
         self.map_name = map_name
         self.group_names = group_names
+
+    def render(self, **kwargs: Any) -> None:
+        data = f'<script type="application/json" id="altigrade-data">{self.data_json}</script>'
+        self.get_root().html.add_child(_Raw(self.panel_html + data), name=self.get_name())
+        super().render(**kwargs)
 
 
 # --------------------------------------------------------------------------------------------
