@@ -46,6 +46,13 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("--version", action="version", version=f"altigrade {__version__}")
+    p.add_argument(
+        "--run-date",
+        metavar="YYYY-MM-DD",
+        default=None,
+        help="evaluate as of this date (days since inspection, future-date checks); "
+        "default $ALTIGRADE_RUN_DATE or today",
+    )
     verbosity = p.add_mutually_exclusive_group()
     verbosity.add_argument("-q", "--quiet", action="store_true", help="print only errors")
     verbosity.add_argument(
@@ -184,6 +191,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         parser.print_help()
         return 2
     con = _Console(args.quiet, args.verbose)
+    if args.run_date:
+        os.environ["ALTIGRADE_RUN_DATE"] = args.run_date
     try:
         return _dispatch(args, con)
     except AltigradeError as exc:

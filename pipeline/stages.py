@@ -640,13 +640,35 @@ def run(
     out = Path(out_dir)
     _check_out_dir(out)
     _check_inputs_not_in(out, config)
-    today = today or dt.date.today()
+    today = today or run_date()
     result = run_stages(
         [*STAGES, _publish_stage()], config, out, today=today, progress=progress, log=log
     )
     result.manifest["outputs"] = result.manifest["counts"].pop("outputs", []) + ["manifest.json"]
     io.write_text_atomic(out / "manifest.json", json.dumps(result.manifest, indent=2, default=str))
     return result
+
+
+def run_date() -> dt.date:
+    """The date a run is evaluated at: ``$ALTIGRADE_RUN_DATE`` (YYYY-MM-DD) when set — so that
+    reruns, comparisons and tests are reproducible across midnight — else today.
+
+    Raises
+    ------
+    ConfigError
+        The variable is set but is not a date.
+    """
+    import os
+
+    from pipeline.errors import ConfigError
+
+    text = os.environ.get("ALTIGRADE_RUN_DATE", "").strip()
+    if not text:
+        return dt.date.today()
+    try:
+        return dt.date.fromisoformat(text)
+    except ValueError:
+        raise ConfigError(f"ALTIGRADE_RUN_DATE={text!r} is not a date (YYYY-MM-DD)") from None
 
 
 def _check_inputs_not_in(out: Path, config: RunConfig) -> None:
@@ -697,7 +719,7 @@ def validate_inputs(config: RunConfig) -> list[str]:
         table,
         source=str(config.inputs.stations),
         default_crs=config.inputs.stations_crs,
-        today=dt.date.today(),
+        today=run_date(),
     )
     lines.append(
         f"{config.inputs.stations}: {len(table.frame)} rows, {len(res.accepted)} usable, "

@@ -10,6 +10,10 @@ from pathlib import Path
 import pytest
 
 REPO = Path(__file__).resolve().parents[1]
+
+# Every run in the tests is evaluated as of one fixed date, so that runs compared with each
+# other never straddle midnight (days since inspection, future-date checks).
+os.environ.setdefault("ALTIGRADE_RUN_DATE", "2026-12-01")
 SMALL_DEMO = ("--cells", "250", "--stations", "40")
 
 

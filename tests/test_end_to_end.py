@@ -241,10 +241,28 @@ def test_corridors_without_a_road_layer_use_dem_derived_roads(small_demo_inputs,
     cfg.write_text(
         f'name = "noroads"\n[inputs]\nstations = "{d / "stations.csv"}"\ndem = "{d / "dem.tif"}"\n'
         f'towns = "{d / "towns.gpkg"}"\n[corridors]\nsnap_distance_m = 5000.0\n'
-        "fallback_grid_cells = 120\n[zones]\nenabled = false\n", encoding="utf-8")
+        "fallback_grid_cells = 120\n[zones]\nenabled = false\n",
+        encoding="utf-8",
+    )
     proc = run_cli("run", str(cfg), "--out", str(tmp_path / "o"))
     assert proc.returncode == 0, proc.stderr
     m = json.loads((tmp_path / "o" / "manifest.json").read_text())
     assert m["counts"]["road_source"].startswith("derived from the DEM")
     st = pyogrio.read_dataframe(tmp_path / "o" / "altigrade.gpkg", layer="stations")
     assert (st["corridor_status"] != "not_on_road_network").any()
+
+
+def test_run_date_is_pinned_and_checked(small_demo_inputs, tmp_path):
+    cfg = tmp_path / "run.toml"
+    cfg.write_text(
+        f'name = "v"\n[inputs]\nstations = "{small_demo_inputs / "stations.csv"}"\n'
+        f'dem = "{small_demo_inputs / "dem.tif"}"\n',
+        encoding="utf-8",
+    )
+    bad = run_cli("--run-date", "2026-13-40", "validate", str(cfg))
+    assert bad.returncode == 2 and "ALTIGRADE_RUN_DATE" in bad.stderr
+    # an early run date turns the demo's recent inspection dates into future dates
+    early = run_cli("--run-date", "2023-01-01", "validate", str(cfg))
+    late = run_cli("--run-date", "2026-12-01", "validate", str(cfg))
+    assert early.returncode == late.returncode == 0
+    assert early.stdout.count("after the run date") > late.stdout.count("after the run date")
