@@ -17,9 +17,21 @@ def ramp_dem(tmp_path):
     z = np.tile(np.linspace(0.0, 4000.0, 200, dtype="float32"), (100, 1))
     z[40:60, 90:110] = -9999
     path = tmp_path / "ramp.tif"
-    with rasterio.open(path, "w", driver="GTiff", width=200, height=100, count=1, dtype="float32",
-                       crs="EPSG:32608", transform=from_origin(300000, 4500000, 100, 100),
-                       nodata=-9999, tiled=True, blockxsize=64, blockysize=64) as ds:
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=200,
+        height=100,
+        count=1,
+        dtype="float32",
+        crs="EPSG:32608",
+        transform=from_origin(300000, 4500000, 100, 100),
+        nodata=-9999,
+        tiled=True,
+        blockxsize=64,
+        blockysize=64,
+    ) as ds:
         ds.write(z, 1)
     return path
 
@@ -27,9 +39,17 @@ def ramp_dem(tmp_path):
 def _zones(path, tile_cells=16, resolution_m=500.0):
     params = FleetModelParams()
     with rasterio.open(path) as ds:
-        return justified_zones(ds, params=params, design=DesignDay(), default_mix=DEFAULT_FLEET_MIX,
-                               fleet_zones=None, share_prefix="share_", band_edges=(85.0, 86.0, 87.0),
-                               resolution_m=resolution_m, tile_cells=tile_cells)
+        return justified_zones(
+            ds,
+            params=params,
+            design=DesignDay(),
+            default_mix=DEFAULT_FLEET_MIX,
+            fleet_zones=None,
+            share_prefix="share_",
+            band_edges=(85.0, 86.0, 87.0),
+            resolution_m=resolution_m,
+            tile_cells=tile_cells,
+        )
 
 
 def test_grid_factor_rounds_to_whole_cells(ramp_dem):
