@@ -507,6 +507,15 @@ def _dem_files(cfg: RunConfig) -> list[Path]:
     return files
 
 
+def _model_params(c: RunConfig) -> dict[str, Any]:
+    """The config slice every stage that evaluates the fleet model depends on."""
+    return {
+        "fleet": c.fleet.model_dump(mode="json"),
+        "mix": c.fleet_mix.model_dump(mode="json"),
+        "design_day": c.design_day.model_dump(mode="json"),
+    }
+
+
 STAGES: list[Stage] = [
     Stage(
         "ingest",
@@ -539,11 +548,7 @@ STAGES: list[Stage] = [
         "fleet",
         _fleet,
         needs=("atmosphere",),
-        params=lambda c: {
-            "fleet": c.fleet.model_dump(mode="json"),
-            "mix": c.fleet_mix.model_dump(mode="json"),
-            "design_day": c.design_day.model_dump(mode="json"),
-        },
+        params=_model_params,
         input_files=lambda c: [c.inputs.fleet_zones] if c.inputs.fleet_zones else [],
         modules=("pipeline.requirement", "pipeline.octane"),
     ),
@@ -553,9 +558,7 @@ STAGES: list[Stage] = [
         needs=(),
         params=lambda c: {
             "zones": c.zones.model_dump(mode="json"),
-            "fleet": c.fleet.model_dump(mode="json"),
-            "mix": c.fleet_mix.model_dump(mode="json"),
-            "design_day": c.design_day.model_dump(mode="json"),
+            **_model_params(c),
         },
         input_files=lambda c: (
             _dem_files(c) + ([c.inputs.fleet_zones] if c.inputs.fleet_zones else [])
@@ -579,9 +582,7 @@ STAGES: list[Stage] = [
         needs=("compliance",),
         params=lambda c: {
             "corridors": c.corridors.model_dump(mode="json"),
-            "fleet": c.fleet.model_dump(mode="json"),
-            "mix": c.fleet_mix.model_dump(mode="json"),
-            "design_day": c.design_day.model_dump(mode="json"),
+            **_model_params(c),
             "defaults": c.station_defaults.model_dump(mode="json"),
         },
         input_files=lambda c: _dem_files(c) + [p for p in (c.inputs.roads, c.inputs.towns) if p],
