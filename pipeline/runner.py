@@ -73,6 +73,8 @@ class StageContext:
     log: Callable[[str], None]
     stage_dir: Path | None = None
     counts: dict[str, Any] = field(default_factory=dict)
+    #: SHA-256 of every input file hashed so far (all of them by the last stage).
+    inputs_sha256: dict[str, str] = field(default_factory=dict)
 
 
 @dataclass
@@ -191,7 +193,7 @@ def run_stages(
         keys[stage.name] = key
         stage_dir = cache_root / stage.name
         key_file = stage_dir / "key.json"
-        ctx = StageContext(config, out_dir, today, progress, log, stage_dir, counts)
+        ctx = StageContext(config, out_dir, today, progress, log, stage_dir, counts, input_hashes)
         if stage.cacheable and config.execution.reuse_unchanged_stages and key_file.exists():
             try:
                 meta = json.loads(key_file.read_text(encoding="utf-8"))

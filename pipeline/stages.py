@@ -435,14 +435,7 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     from pipeline.maps import audience_maps
 
     texts.update(audience_maps(ctx, up, stations, zones, rejected))
-    ctx.counts["_upstream"] = up
-    ctx.counts["_plans_for_report"] = plans
-    try:
-        report = _report_html(ctx, stations, rejected)
-    finally:
-        ctx.counts.pop("_upstream", None)
-        ctx.counts.pop("_plans_for_report", None)
-    texts["report.html"] = report
+    texts["report.html"] = _report_html(ctx, up, stations, rejected)
     io.write_gpkg_layers(out / "altigrade.gpkg", layers, crs)
     for fname, text in texts.items():
         io.write_text_atomic(out / fname, text)
@@ -451,25 +444,15 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     return {"stations": stations, "rejected_stations": rejected}
 
 
-def ctx_up_get(ctx: StageContext, stage: str, name: str):
-    """An artefact of an upstream stage, as handed to the publish stage (or None)."""
-    return ctx.counts.get("_upstream", {}).get(stage, {}).get(name)
-
-
-def _report_html(ctx: StageContext, stations, rejected) -> str:
-    from pipeline.report import build_report_html
+def _report_html(ctx: StageContext, up: dict[str, dict[str, Any]], stations, rejected) -> str:
+    from pipeline.report import build_report_html, decision_sections
 
     cfg = ctx.config
-    manifest = {
-        "config": cfg.model_dump(mode="json"),
-        "inputs_sha256": ctx.counts.get("inputs_sha256"),
-    }
-    from pipeline.report import decision_sections
-
+    manifest = {"config": cfg.model_dump(mode="json"), "inputs_sha256": dict(ctx.inputs_sha256)}
     extra = decision_sections(
         stations=pd.DataFrame(stations.drop(columns=stations.geometry.name)),
-        corridors=ctx_up_get(ctx, "corridors", "corridors"),
-        plans=ctx.counts.get("_plans_for_report", {}),
+        corridors=up.get("corridors", {}).get("corridors"),
+        plans=up.get("plans", {}),
     )
     return build_report_html(
         extra_sections=extra,
