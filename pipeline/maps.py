@@ -5,6 +5,7 @@ The drawing itself is :mod:`pipeline.webmap`; this module decides what each map 
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from typing import Any
 
 import geopandas as gpd
@@ -21,7 +22,7 @@ from pipeline.webmap import (
     build_map_html,
 )
 
-__all__ = ["VERDICT_STYLE", "ZONE_COLORS", "station_map_spec", "station_map_html", "basemap_of"]
+__all__ = ["VERDICT_STYLE", "ZONE_COLORS", "station_map_spec", "audience_maps", "basemap_of"]
 
 #: Verdict colours (Okabe–Ito) and plain labels for the legend.
 VERDICT_STYLE = CategoryStyle(
@@ -199,6 +200,7 @@ def station_map_spec(
     title: str,
     subtitle: str,
     generated_note: str = "",
+    station_popup: Sequence[tuple[str, str]] = STATION_POPUP,
 ) -> MapSpec:
     """The stations map: justified-AKI zones, roads, towns, corridors, stations by verdict."""
     layers: list[MapLayer] = []
@@ -223,17 +225,7 @@ def station_map_spec(
     if cl is not None:
         layers.append(cl)
     st_style = VERDICT_STYLE if "verdict" in stations.columns else None
-    layers.append(
-        MapLayer(
-            name="Stations",
-            gdf=stations,
-            style=st_style,
-            popup_fields=_present(stations, STATION_POPUP),
-            tooltip_field="name",
-            searchable_fields=tuple(c for c in ("station_id", "name") if c in stations.columns),
-            point_radius_px=6,
-        )
-    )
+    layers.append(_station_layer(stations, st_style, station_popup))
     if rejected is not None and len(rejected) and rejected.geometry.notna().any():
         rj = rejected[rejected.geometry.notna()]
         layers.append(
@@ -436,6 +428,7 @@ def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected)
         subtitle="Verdicts, justified-AKI zones, descent corridors, priorities "
         "and next inspection routes",
         generated_note=note,
+        station_popup=REGULATOR_POPUP,
     )
     layers = list(reg.layers)
     routes = plans.get("inspection_routes")
@@ -479,10 +472,6 @@ def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected)
                 point_radius_px=8,
             ),
         )
-    layers = [
-        _station_layer(stations, VERDICT_STYLE, REGULATOR_POPUP) if lyr.name == "Stations" else lyr
-        for lyr in layers
-    ]
     maps["map.html"] = build_map_html(
         MapSpec(
             title=reg.title,
@@ -561,25 +550,3 @@ def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected)
         )
     )
     return maps
-
-
-def station_map_html(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected) -> str:
-    """Build the stations map for a run from its stage artefacts and optional inputs."""
-    from pipeline import io
-
-    cfg = ctx.config
-    roads = io.read_vector(cfg.inputs.roads, what="roads") if cfg.inputs.roads else None
-    towns = io.read_vector(cfg.inputs.towns, what="towns") if cfg.inputs.towns else None
-    spec = station_map_spec(
-        stations,
-        zones=zones,
-        roads=roads,
-        towns=towns,
-        rejected=rejected,
-        corridors=up.get("corridors", {}).get("corridors"),
-        basemap=basemap_of(up.get("terrain", {})),
-        title=f"Minimum gasoline AKI by station — {cfg.name}",
-        subtitle="Elevation, barometric pressure, justified minimum AKI and verdicts",
-        generated_note=f"Run date {ctx.today.isoformat()} · altigrade",
-    )
-    return build_map_html(spec)

@@ -109,6 +109,11 @@ def plans_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
             }
     if cfg.supply.enabled:
         frame = pd.DataFrame(st.drop(columns=st.geometry.name))
+        # one default for a blank regular_share, the same the corridors stage used
+        share = (
+            frame["regular_share"] if "regular_share" in frame else pd.Series(np.nan, frame.index)
+        )
+        frame["regular_share"] = share.fillna(cfg.station_defaults.regular_share)
         sp = supply_plan(frame, cfg.supply.plan)
         by_id = sp.stations.set_index("station_id")
         st["recommended_regular_aki"] = (

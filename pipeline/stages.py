@@ -146,10 +146,8 @@ def _as_rejected(gdf: gpd.GeoDataFrame, reasons: list[str]) -> gpd.GeoDataFrame:
 
 
 def _basemap(ds, ctx: StageContext) -> dict[str, Any]:
-    try:
-        from pipeline.hillshade import basemap_from_dataset
-    except ImportError:  # pragma: no cover - during development only
-        return {}
+    from pipeline.hillshade import basemap_from_dataset
+
     bm = basemap_from_dataset(ds, max_pixels=ctx.config.outputs.map_max_basemap_px)
     return {"basemap_png": bm.png_bytes, "basemap_bounds": {"bounds": bm.bounds_latlon}}
 
