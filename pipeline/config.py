@@ -183,15 +183,69 @@ class OutputsConfig(_Frozen):
     map_max_basemap_px: int = Field(
         1400, ge=200, le=6000, description="Hillshade size on the map [px]."
     )
+    map_max_lines: int = Field(
+        20_000,
+        ge=100,
+        le=1_000_000,
+        description="Most road and corridor lines drawn on each HTML map (the busiest roads, "
+        "the riskiest corridors); the GeoPackage keeps every line.",
+    )
 
 
 class ExecutionConfig(_Frozen):
     """How the stages run."""
 
-    mode: Literal["local"] = "local"
+    mode: Literal["local", "threads", "dask"] = Field(
+        "local",
+        description="'local': partitions run one after another in this process; 'threads': "
+        "on a pool of threads; 'dask': as tasks on a Dask cluster (the scheduler at "
+        "execution.scheduler, or a local cluster of worker processes on 127.0.0.1). Results "
+        "are identical in every mode.",
+    )
+    workers: int | None = Field(
+        None,
+        ge=1,
+        le=1024,
+        description="Threads ('threads') or worker processes of the local Dask cluster; "
+        "default: the number of CPU cores.",
+    )
+    scheduler: str | None = Field(
+        None,
+        min_length=1,
+        description="Address of a running Dask scheduler (e.g. 'tcp://10.0.0.5:8786'); "
+        "None starts a local cluster for the run.",
+    )
+    connect_timeout_s: float = Field(
+        30.0, gt=0, le=3600, description="How long to wait for the Dask scheduler [s]."
+    )
+    worker_memory_limit: str | None = Field(
+        None,
+        min_length=1,
+        description="Memory limit per local Dask worker (e.g. '4GB'); default: Dask's 'auto'.",
+    )
+    partition_sources: int = Field(
+        64,
+        ge=1,
+        description="Corridor sources per partition (sources are ordered spatially first).",
+    )
+    partition_edges: int = Field(
+        131072, ge=1000, description="Road edges per edge-profile partition."
+    )
+    partition_stations: int = Field(
+        16384, ge=100, description="Stations per DEM-sampling partition."
+    )
+    partition_tiles: int = Field(
+        4, ge=1, description="Zone-grid tiles per justified-zones partition."
+    )
     reuse_unchanged_stages: bool = Field(
         True, description="Skip a stage whose inputs, code and parameters are unchanged."
     )
+
+    @model_validator(mode="after")
+    def _check_mode(self) -> ExecutionConfig:
+        if self.scheduler is not None and self.mode != "dask":
+            raise ValueError("execution.scheduler is only used with mode = 'dask'")
+        return self
 
 
 class StationDefaultsConfig(_Frozen):

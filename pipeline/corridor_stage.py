@@ -7,11 +7,13 @@ calculation is in :mod:`pipeline.roadgraph`, :mod:`pipeline.corridors` and
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import geopandas as gpd
 import numpy as np
 import pandas as pd
+import shapely
 from rasterio.enums import Resampling
 
 from pipeline import io, terrain
@@ -19,9 +21,24 @@ from pipeline import requirement as rq
 from pipeline.config import RunConfig
 from pipeline.corridors import compute_corridors, corridor_lines
 from pipeline.errors import InputFileError
-from pipeline.roadgraph import build_road_graph, edge_profiles, snap_points
+from pipeline.partitions import morton_key, partition_slices
+from pipeline.roadgraph import (
+    build_road_graph,
+    edge_profiles,
+    line_profiles,
+    profile_spacing_m,
+    snap_points,
+)
 
-__all__ = ["corridors_stage", "requirement_function", "derived_roads", "road_graph_for"]
+__all__ = [
+    "corridor_candidates",
+    "corridor_required",
+    "corridors_stage",
+    "derived_roads",
+    "partitioned_profiles",
+    "requirement_function",
+    "road_graph_for",
+]
 
 
 def requirement_function(cfg: RunConfig):
@@ -91,6 +108,76 @@ def road_graph_for(cfg: RunConfig, ds, stations: gpd.GeoDataFrame, towns: gpd.Ge
     return build_road_graph(roads), source
 
 
+def _profile_part(
+    edges: np.ndarray,
+    *,
+    geometry,
+    length_m,
+    crs,
+    dem: Path,
+    spacing_m: float,
+    climb_grade_threshold_pct: float,
+) -> pd.DataFrame:
+    """One partition of :func:`partitioned_profiles`: opens the DEM where it runs."""
+    with io.open_dem(dem) as ds:
+        return line_profiles(
+            geometry[edges],
+            length_m[edges],
+            crs,
+            ds,
+            spacing_m=spacing_m,
+            climb_grade_threshold_pct=climb_grade_threshold_pct,
+        )
+
+
+def partitioned_profiles(
+    graph,
+    dem: Path,
+    *,
+    spacing_m: float,
+    climb_grade_threshold_pct: float,
+    edges_per_partition: int,
+    executor=None,
+) -> pd.DataFrame:
+    """:func:`pipeline.roadgraph.edge_profiles` of every edge, computed in spatial partitions.
+
+    Edges are ordered along a Morton curve of their midpoints (so a partition touches few DEM
+    blocks) and cut into partitions of ``edges_per_partition``; each partition opens the DEM
+    itself and profiles its edges with :func:`pipeline.roadgraph.line_profiles`. A line's
+    profile depends on that line and the DEM alone, so the table equals the one-piece
+    calculation to the bit, in every execution mode."""
+    m = graph.n_edges
+    if m == 0:
+        with io.open_dem(dem) as ds:
+            return edge_profiles(
+                graph, ds, spacing_m=spacing_m, climb_grade_threshold_pct=climb_grade_threshold_pct
+            )
+    mid = shapely.get_coordinates(
+        shapely.line_interpolate_point(graph.geometry, 0.5, normalized=True)
+    )
+    order = np.argsort(morton_key(mid), kind="stable")
+    parts = [np.sort(order[sl]) for sl in partition_slices(m, edges_per_partition)]
+    shared = {
+        "geometry": graph.geometry,
+        "length_m": np.asarray(graph.length_m, dtype=float),
+        "crs": graph.crs.to_wkt(),
+        "dem": Path(dem),
+        "spacing_m": float(spacing_m),
+        "climb_grade_threshold_pct": float(climb_grade_threshold_pct),
+    }
+    if executor is None:
+        results = [_profile_part(p, **shared) for p in parts]
+    else:
+        results = executor.map(_profile_part, parts, shared=shared)
+    out = pd.concat(
+        [r.set_axis(p, axis=0) for p, r in zip(parts, results, strict=True)]
+    ).sort_index()
+    out.index = pd.RangeIndex(m, name="edge")
+    out.attrs.update(results[0].attrs)
+    out.attrs["blocks_read"] = int(sum(r.attrs.get("blocks_read", 0) for r in results))
+    return out
+
+
 def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     """Adds ``export_risk_l_aki_per_month``, ``fuel_share_in_deficit``, ``corridor_status``,
     ``corridor_required_aki``, ``road_snap_m``; makes the ``corridors`` lines (graph CRS)."""
@@ -107,7 +194,15 @@ def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     with io.open_dem(cfg.inputs.dem) as ds:
         graph, source = road_graph_for(cfg, ds, st, towns)
         ctx.progress("corridors", 0.1)
-        profiles = edge_profiles(graph, ds, climb_grade_threshold_pct=cc.climb_grade_threshold_pct)
+        spacing_m = profile_spacing_m(graph, ds)
+    profiles = partitioned_profiles(
+        graph,
+        cfg.inputs.dem,
+        spacing_m=spacing_m,
+        climb_grade_threshold_pct=cc.climb_grade_threshold_pct,
+        edges_per_partition=cfg.execution.partition_edges,
+        executor=ctx.executor,
+    )
     ctx.progress("corridors", 0.4)
     sx, sy = terrain.transform_points(st["lon"], st["lat"], "EPSG:4326", graph.crs)
     node, dist, snapped = snap_points(graph, np.column_stack([sx, sy]), cc.snap_distance_m)
@@ -138,7 +233,18 @@ def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
         ctx.counts["towns_snapped"] = int(tsnap.sum())
         ctx.counts["towns_not_snapped"] = int((~tsnap).sum())
     req = requirement_function(cfg)
-    res = compute_corridors(graph, profiles, sources, dests, req, cc.model)
+    candidates = corridor_candidates(cfg)
+    res = compute_corridors(
+        graph,
+        profiles,
+        sources,
+        dests,
+        req,
+        cc.model,
+        candidate_aki=candidates,
+        sources_per_partition=cfg.execution.partition_sources,
+        executor=ctx.executor,
+    )
     ctx.progress("corridors", 0.7)
     srow = res.stations.reset_index(drop=True)
     st["road_snap_m"] = np.round(dist, 1)
@@ -150,9 +256,16 @@ def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     st["corridor_status"] = np.where(~snapped, "not_on_road_network", status)
     sending = srow["status"].astype(str).to_numpy() == "source"
     share_now = np.where(sending, srow["fuel_share_in_deficit"].to_numpy(float), np.nan)
-    st["corridor_required_aki"] = _corridor_required(
-        graph, profiles, sources, dests, req, cfg, share_now
+    st["corridor_required_aki"] = corridor_required(
+        sources["aki"].to_numpy(float),
+        share_now,
+        candidates,
+        res.candidate_share_in_deficit,
+        standard_aki=cc.model.sea_level_standard_aki,
+        step_aki=cfg.fleet.posting_step_aki,
+        allowed_share=1.0 - cfg.fleet.target_share,
     )
+    ctx.counts["corridor_partitions"] = res.summary["partitions"]
     lines = corridor_lines(graph, res)
     ctx.counts["road_graph"] = {
         k: v for k, v in graph.stats.items() if not isinstance(v, dict | list)
@@ -163,37 +276,64 @@ def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     return {"stations": st, "corridors": lines}
 
 
-def _corridor_required(graph, profiles, sources, dests, req, cfg, share_now) -> np.ndarray:
+def corridor_candidates(cfg: RunConfig) -> np.ndarray:
+    """Posting-grid grades [AKI] below the sea-level standard that a station might move its
+    regular to: every step from the lowest grade ever posted (80) up to the standard."""
+    std = cfg.corridors.model.sea_level_standard_aki
+    step = cfg.fleet.posting_step_aki
+    lo = np.floor(_LOWEST_POSTED_AKI / step) * step
+    grid = np.round(np.arange(lo, std, step), 6)
+    return grid[grid < std - 1e-9]
+
+
+#: The lowest regular grade the candidate search starts from [AKI] (below any grade sold).
+_LOWEST_POSTED_AKI = 80.0
+
+
+def corridor_required(
+    aki: np.ndarray,
+    share_now: np.ndarray,
+    candidates: np.ndarray,
+    candidate_share: np.ndarray,
+    *,
+    standard_aki: float,
+    step_aki: float,
+    allowed_share: float,
+) -> np.ndarray:
     """Lowest posting-grid AKI whose exported fuel stays out of deficit on at least the target
     share of its driving (volume × distance), capped at the sea-level standard.
 
-    Re-runs the flows with each exporting station's regular raised to each candidate grade,
-    from its posted AKI up to the sea-level standard; the first candidate whose
-    ``fuel_share_in_deficit`` is at most 1 − ``fleet.target_share`` is the answer. NaN where
-    the station sends no sub-standard fuel.
+    Parameters
+    ----------
+    aki : ndarray (n,)
+        Regular AKI posted today [AKI].
+    share_now : ndarray (n,)
+        ``fuel_share_in_deficit`` at today's grade; NaN where the station exports nothing.
+    candidates : ndarray (k,)
+        Candidate grades [AKI], ascending, below the standard.
+    candidate_share : ndarray (n, k)
+        ``fuel_share_in_deficit`` had the station sold each candidate
+        (:attr:`pipeline.corridors.CorridorResult.candidate_share_in_deficit`).
+    standard_aki, step_aki, allowed_share : float
+        Sea-level standard [AKI], posting step [AKI], and 1 − the fleet's target share.
+
+    Returns
+    -------
+    ndarray (n,) [AKI]: today's grade rounded up to the step where it already suffices; else
+    the lowest candidate above today's grade that does; else the standard. NaN where the
+    station exports nothing.
     """
-    std = cfg.corridors.model.sea_level_standard_aki
-    step = cfg.fleet.posting_step_aki
-    allowed = 1.0 - cfg.fleet.target_share
-    aki = sources["aki"].to_numpy(float)
-    out = np.full(len(sources), np.nan)
+    aki = np.asarray(aki, dtype=float)
+    share_now = np.asarray(share_now, dtype=float)
+    out = np.full(aki.size, np.nan)
     exporting = np.isfinite(share_now)
-    out[exporting] = std
-    ok_now = exporting & (share_now <= allowed)
-    out[ok_now] = np.ceil(aki[ok_now] / step - 1e-9) * step
+    out[exporting] = standard_aki
+    ok_now = exporting & (share_now <= allowed_share)
+    out[ok_now] = np.ceil(aki[ok_now] / step_aki - 1e-9) * step_aki
     done = ~exporting | ok_now
-    if done.all():
-        return out
-    lo = np.nanmin(aki[~done])
-    for cand in np.arange(np.ceil(lo / step) * step + step, std, step):
-        trial = sources.copy()
-        raise_to = ~done & (aki < cand)
-        if not raise_to.any():
-            continue
-        trial.loc[raise_to, "aki"] = cand
-        r = compute_corridors(graph, profiles, trial, dests, req, cfg.corridors.model)
-        share = r.stations.reset_index(drop=True)["fuel_share_in_deficit"].to_numpy(float)
-        clear = raise_to & (share <= allowed)
+    for c, cand in enumerate(candidates):
+        with np.errstate(invalid="ignore"):
+            clear = ~done & (cand > aki + 1e-9) & (candidate_share[:, c] <= allowed_share)
         out[clear] = cand
         done |= clear
     return out

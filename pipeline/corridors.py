@@ -9,8 +9,8 @@ tank times the octane deficit there.
 
 Method, per source station s (regular AKI below ``sea_level_standard_aki``, volume V_s > 0)
 -------------------------------------------------------------------------------------------
-1. Shortest-path tree: ``scipy.sparse.csgraph.dijkstra(indices=sources, limit=R,
-   return_predecessors=True)`` on the length-weighted adjacency, R = tank range.
+1. Shortest-path tree: Dijkstra's method bounded at R = tank range
+   (:func:`pipeline.shortest_paths.bounded_tree`, compiled, on the partition's subgraph).
 2. Gravity split, constrained at the source only (all of V_s leaves; destinations take what
    their weight and distance attract)::
 
@@ -24,8 +24,8 @@ Method, per source station s (regular AKI below ``sea_level_standard_aki``, volu
    in another component take no share; a source with no destination at all is ``unrouted``.
    Conservation: sent = delivered + beyond_range, per source.
 3. Flows on the tree: the flow on the tree edge into node x is the total q of destinations in
-   x's subtree, by :func:`subtree_sums` (pointer jumping, O(n log depth) numpy work; no path
-   is ever walked per destination).
+   x's subtree, summed in one pass over the tree's nodes from the farthest to the source
+   (:func:`pipeline.shortest_paths.tree_flows`; no path is walked per destination).
 4. Tank model: fuel is used uniformly over the tank range, so the share of the station's fuel
    still in the tank at distance x is σ(x) = max(0, 1 − x/R). On a tree edge from distance a
    to b = a + ℓ carrying flow F the volume-distance of that fuel is
@@ -77,11 +77,14 @@ from typing import Any, Literal
 import geopandas as gpd
 import numpy as np
 import pandas as pd
+from numpy.typing import ArrayLike
 from pydantic import BaseModel, ConfigDict, Field
-from scipy.sparse.csgraph import dijkstra
+from scipy import sparse
 
 from pipeline.errors import AltigradeError
+from pipeline.partitions import morton_key, partition_slices
 from pipeline.roadgraph import PROFILE_QUANTILE_COLUMNS, RoadGraph
+from pipeline.shortest_paths import TreeWork, bounded_tree, tree_flows
 
 try:  # the project's own blending function; a local linear blend otherwise
     from pipeline.octane import blend_linear as _blend_linear
@@ -199,7 +202,8 @@ class CorridorResult:
         ``volume_l_per_month``, ``is_source``, ``status``, ``sent_l_per_month``,
         ``delivered_l_per_month``, ``beyond_range_l_per_month``, ``unrouted_l_per_month``,
         ``export_risk_l_aki_per_month``, ``volume_distance_l_km_per_month``,
-        ``fuel_share_in_deficit``, ``destinations_reached``, ``nodes_reached``.
+        ``fuel_share_in_deficit``, ``destinations_reached``, ``nodes_reached`` (nodes
+        settled before the search stopped: at the last destination, or at the tank range).
     summary : dict
         Totals, counts and timings [s] for the run manifest.
     """
@@ -207,6 +211,11 @@ class CorridorResult:
     edges: pd.DataFrame
     stations: pd.DataFrame
     summary: dict[str, Any] = field(default_factory=dict)
+    #: The ``candidate_aki`` grades asked for [AKI], shape (k,).
+    candidate_aki: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    #: ``fuel_share_in_deficit`` of each station row had it sold each candidate grade,
+    #: shape (n_stations, k); NaN where the station sends nothing.
+    candidate_share_in_deficit: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
 
 
 # ----------------------------------------------------------------------------------------------
@@ -329,7 +338,9 @@ def compute_corridors(
     params: CorridorParams | None = None,
     *,
     local_aki: float | np.ndarray | None = None,
-    batch_bytes: float = 256e6,
+    candidate_aki: ArrayLike | None = None,
+    sources_per_partition: int = 64,
+    executor: Any = None,
 ) -> CorridorResult:
     """Flows of sub-standard fuel from stations over the road graph, and the risk they carry.
 
@@ -354,8 +365,19 @@ def compute_corridors(
     local_aki : float or ndarray (n_edges,), optional
         AKI of the top-up fuel along each edge [AKI]; default ``params.refill_aki`` or the
         sea-level standard. Only matters with ``refill_dilution`` > 0.
-    batch_bytes : float
-        Memory budget for one Dijkstra batch (distance + predecessor rows) [bytes].
+    candidate_aki : array_like (k,), optional
+        Grades [AKI] at which each source's ``fuel_share_in_deficit`` is also evaluated, as if
+        the station sold that grade (same trees and flows; only the tank AKI changes), for the
+        grades above the station's own. Returned in
+        :attr:`CorridorResult.candidate_share_in_deficit` (NaN at and below its own grade).
+    sources_per_partition : int
+        Sources are ordered along a space-filling (Morton) curve of their nodes and cut into
+        partitions of this many; each partition routes on the subgraph of nodes within the
+        tank range (plus :data:`CUT_MARGIN_SHARE` of it) of its sources' bounding box.
+    executor : pipeline.execution.Executor, optional
+        Runs the partitions (in this process when None). The partitions and the order in
+        which their edge sums are combined depend on the data alone, so the result is
+        identical to the bit whichever executor runs them.
 
     Returns
     -------
@@ -370,12 +392,16 @@ def compute_corridors(
     -----
     The model (gravity split, tank share, dilution, deficit, risk) is given in the module
     docstring with its equations. Units: flows L/month, distances km, risk L·AKI/month.
+
+    Cutting the graph changes no shortest path within the range R: a node reached within R
+    lies within straight-line distance R of its source (an edge is never shorter than its
+    chord), so every node and edge of every tree within R is kept, in the same order. The
+    margin absorbs the scale error of the metric CRS where lengths are geodesic.
     """
     params = params or CorridorParams()
     t_start = time.perf_counter()
     n = graph.n_nodes
     r_m = params.tank_range_km * _M_PER_KM
-    r_km = params.tank_range_km
     standard = params.sea_level_standard_aki
 
     # Requirement per CSR entry (edge-direction).
@@ -412,7 +438,6 @@ def compute_corridors(
         req_bins.append(rb)
     req = np.column_stack(req_bins) if req_bins else np.zeros((nnz, 1))  # (nnz, bins)
     req_nan = ~np.isfinite(req).all(axis=1)
-    n_bins = req.shape[1]
     # NaN requirement → no deficit: −inf makes max(req − tank, 0) zero without a test
     req_clean = np.where(np.isfinite(req), req, -np.inf)
     with np.errstate(invalid="ignore"), warnings.catch_warnings():
@@ -431,6 +456,7 @@ def compute_corridors(
         else:
             raise CorridorError("local_aki must be a scalar or one value per edge")
         loc = np.where(np.isfinite(loc), loc, loc_default)
+    cand = np.zeros(0) if candidate_aki is None else np.asarray(candidate_aki, dtype=float).ravel()
 
     # Sources.
     s_node = _column(sources, "node", "sources").astype(np.int64)
@@ -459,8 +485,6 @@ def compute_corridors(
     d_ok = (d_node_all >= 0) & (d_node_all < n) & np.isfinite(d_w_all) & (d_w_all > 0)
     d_node = d_node_all[d_ok]
     d_w = d_w_all[d_ok]
-    d_xy = graph.node_xy[d_node] if d_node.size else np.zeros((0, 2))
-    d_comp = graph.component[d_node] if d_node.size else np.zeros(0, dtype=np.int64)
     excl: dict[int, np.ndarray] = {}
     if s_key is not None and d_id_all is not None and d_node.size:
         d_ids = pd.Series(np.arange(d_node.size), index=pd.Index(np.asarray(d_id_all)[d_ok]))
@@ -470,7 +494,41 @@ def compute_corridors(
             if key in groups.index:
                 excl[int(i)] = np.asarray(groups.loc[key], dtype=np.int64)
 
-    # Outputs per station.
+    # Partitions of the sources, ordered along a Morton curve of their nodes.
+    src_rows = np.flatnonzero(status == "source")
+    src_rows = src_rows[np.argsort(morton_key(graph.node_xy[s_node[src_rows]]), kind="stable")]
+    net = _Network(
+        indptr=np.asarray(graph.adjacency.indptr, dtype=np.int64),
+        indices=np.asarray(graph.adjacency.indices, dtype=np.int64),
+        length_m=ent_len,
+        node_xy=np.asarray(graph.node_xy, dtype=float),
+        node_rank=_morton_rank(graph.node_xy),
+        component=np.asarray(graph.component, dtype=np.int64),
+        req_clean=req_clean,
+        local_aki=loc,
+        d_node=d_node,
+        d_weight=d_w,
+        candidate_aki=cand,
+        params=params,
+    )
+    parts = []
+    for sl in partition_slices(src_rows.size, sources_per_partition):
+        rows = src_rows[sl]
+        parts.append(
+            _SourceBatch(
+                rows=rows,
+                node=s_node[rows],
+                volume_l=s_vol[rows],
+                aki=s_aki[rows],
+                exclude=[excl.get(int(i)) for i in rows],
+            )
+        )
+    if executor is None:
+        results = [_corridor_partition(p, net=net) for p in parts]
+    else:
+        results = executor.map(_corridor_partition, parts, shared={"net": net})
+
+    # Combine in partition order (the same order in every execution mode).
     sent = np.zeros(ns)
     delivered = np.zeros(ns)
     beyond = np.zeros(ns)
@@ -478,121 +536,30 @@ def compute_corridors(
     export_risk = np.zeros(ns)
     vd_total = np.zeros(ns)
     vd_deficit = np.zeros(ns)
+    vd_deficit_cand = np.zeros((ns, cand.size))
     n_dest = np.zeros(ns, dtype=np.int64)
     n_reached = np.zeros(ns, dtype=np.int64)
-
-    # Accumulators per CSR entry.
-    acc_flow = np.zeros(nnz)
-    acc_vd = np.zeros(nnz)
-    acc_risk = np.zeros(nnz)
-    acc_fdist = np.zeros(nnz)
-    acc_vdaki = np.zeros(nnz)
-    acc_vddef = np.zeros(nnz)
-    acc_count = np.zeros(nnz)
-
-    src_rows = np.flatnonzero(status == "source")
-    batch = max(1, int(batch_bytes // max(1, n * 12)))
-    lmap = np.full(n, -1, dtype=np.int64)
+    acc = np.zeros((len(_ACC_FIELDS), nnz))
     t_dij = 0.0
-    dilution = params.refill_dilution
-    for b0 in range(0, src_rows.size, batch):
-        rows = src_rows[b0 : b0 + batch]
-        t0 = time.perf_counter()
-        dist, pred = dijkstra(
-            graph.adjacency,
-            directed=True,
-            indices=s_node[rows],
-            limit=r_m,
-            return_predecessors=True,
-        )
-        t_dij += time.perf_counter() - t0
-        parts: list[tuple[np.ndarray, ...]] = []
-        for r, i in enumerate(rows):
-            d = dist[r]
-            pr = pred[r]
-            src = s_node[i]
-            w = d_w
-            if i in excl:
-                w = d_w.copy()
-                w[excl[i]] = 0.0
-            dd = d[d_node]
-            fin = np.isfinite(dd)
-            live = w > 0
-            reach = fin & live
-            far = ~fin & live & (d_comp == graph.component[src])
-            f = np.zeros(d_node.size)
-            f[reach] = decay_weight(dd[reach] / _M_PER_KM, params)
-            if far.any():
-                eu = np.hypot(*(d_xy[far] - graph.node_xy[src]).T)
-                f[far] = decay_weight(np.maximum(eu, r_m) / _M_PER_KM, params)
-            g = w * f
-            tot = g.sum()
-            if not tot > 0:
-                status[i] = "no_destination"
-                unrouted[i] = s_vol[i]
-                continue
-            q = s_vol[i] * (g / tot)
-            sent[i] = s_vol[i]
-            beyond[i] = q[far].sum()
-            n_dest[i] = int(reach.sum())
-
-            fin_all = np.isfinite(d)
-            k = int(np.count_nonzero(fin_all))
-            n_reached[i] = k
-            if 2 * k < n:
-                # Few nodes reached: work on the reached ones only.
-                reached = np.flatnonzero(fin_all)
-                lmap[reached] = np.arange(k)
-                prr = pr[reached]
-                par = np.where(prr >= 0, lmap[np.maximum(prr, 0)], -1)
-                dem = np.bincount(lmap[d_node[reach]], weights=q[reach], minlength=k)
-                root = lmap[src]
-                lmap[reached] = -1
-            else:
-                # Most nodes reached: unreached ones are isolated roots with no demand.
-                reached = None
-                prr = pr
-                par = np.where(pr >= 0, pr, -1)
-                dem = np.bincount(d_node[reach], weights=q[reach], minlength=n)
-                root = src
-            s_sub = subtree_sums(par, dem)
-            delivered[i] = s_sub[root]
-            fl = np.flatnonzero((s_sub > 0) & (par >= 0))
-            if fl.size == 0:
-                continue
-            head = fl if reached is None else reached[fl]
-            tail = prr[fl]
-            flow = s_sub[fl]
-            ent = graph.entry_index(tail, head)
-            a = d[tail]
-            ell = ent_len[ent]
-            vd = flow * _share_integral_m(a, a + ell, r_m) / _M_PER_KM
-            mid = a + 0.5 * ell
-            if dilution > 0:
-                x = dilution * (1.0 - tank_share(mid, r_m))
-                tank = _blend(np.full(x.size, s_aki[i]), loc[ent], x)
-            else:
-                tank = np.full(fl.size, s_aki[i])
-            dbin = np.maximum(req_clean[ent] - tank[:, None], 0.0)
-            deficit = dbin.sum(axis=1) / n_bins
-            # share of the edge's length (its elevation bins) in deficit
-            in_deficit = np.count_nonzero(dbin > 0, axis=1) / n_bins
-            risk = vd * deficit / r_km
-            export_risk[i] = risk.sum()
-            vd_total[i] = vd.sum()
-            vd_deficit[i] = (vd * in_deficit).sum()
-            parts.append((ent, flow, vd, risk, flow * mid, vd * tank, vd * deficit))
-        if parts:
-            cat = [np.concatenate(c) for c in zip(*parts, strict=True)]
-            ent_all = cat[0]
-            for accum, vals in zip(
-                (acc_flow, acc_vd, acc_risk, acc_fdist, acc_vdaki, acc_vddef),
-                cat[1:],
-                strict=True,
-            ):
-                accum += np.bincount(ent_all, weights=vals, minlength=nnz)
-            acc_count += np.bincount(ent_all, minlength=nnz)
-        del dist, pred
+    sub_nodes = []
+    for p, r in zip(parts, results, strict=True):
+        rows = p.rows
+        routed = r["routed"]
+        status[rows[~routed]] = "no_destination"
+        unrouted[rows[~routed]] = s_vol[rows[~routed]]
+        sent[rows] = r["sent"]
+        delivered[rows] = r["delivered"]
+        beyond[rows] = r["beyond"]
+        export_risk[rows] = r["export_risk"]
+        vd_total[rows] = r["vd_total"]
+        vd_deficit[rows] = r["vd_deficit"]
+        vd_deficit_cand[rows] = r["vd_deficit_cand"]
+        n_dest[rows] = r["destinations_reached"]
+        n_reached[rows] = r["nodes_reached"]
+        acc[:, r["entries"]] += r["acc"]
+        t_dij += r["dijkstra_s"]
+        sub_nodes.append(r["subgraph_nodes"])
+    acc_flow, acc_vd, acc_risk, acc_fdist, acc_vdaki, acc_vddef, acc_count = acc
 
     # Edge-direction table.
     sel = np.flatnonzero(acc_flow > 0)
@@ -622,6 +589,7 @@ def compute_corridors(
             }
         )
         share_def = np.where(vd_total > 0, vd_deficit / vd_total, np.nan)
+        share_cand = np.where(vd_total[:, None] > 0, vd_deficit_cand / vd_total[:, None], np.nan)
     stations = pd.DataFrame(
         {
             "node": s_node,
@@ -653,11 +621,233 @@ def compute_corridors(
         "beyond_range_l_per_month": float(beyond.sum()),
         "unrouted_l_per_month": float(unrouted.sum()),
         "export_risk_l_aki_per_month": float(export_risk.sum()),
-        "dijkstra_batch_size": int(batch),
+        "partitions": len(parts),
+        "subgraph_nodes_max": int(max(sub_nodes, default=0)),
+        "subgraph_nodes_mean": float(np.mean(sub_nodes)) if sub_nodes else 0.0,
         "dijkstra_s": t_dij,
         "total_s": time.perf_counter() - t_start,
     }
-    return CorridorResult(edges=edges, stations=stations, summary=summary)
+    return CorridorResult(
+        edges=edges,
+        stations=stations,
+        summary=summary,
+        candidate_aki=cand,
+        candidate_share_in_deficit=share_cand,
+    )
+
+
+def _morton_rank(xy: np.ndarray) -> np.ndarray:
+    """Rank of each node along the Morton curve of all nodes (ties by node number)."""
+    order = np.argsort(morton_key(xy), kind="stable")
+    rank = np.empty(order.size, dtype=np.int64)
+    rank[order] = np.arange(order.size)
+    return rank
+
+
+#: Share of the tank range added around a partition's sources when cutting its subgraph: covers
+#: the scale error of a metric CRS against geodesic edge lengths (well under 1 % within a
+#: projection's intended area).
+CUT_MARGIN_SHARE = 0.05
+
+_ACC_FIELDS = ("flow", "vd", "risk", "fdist", "vdaki", "vddef", "count")
+
+
+@dataclass(frozen=True, eq=False)
+class _Network:
+    """What every corridor partition reads: the routable graph as plain arrays, the
+    requirement and top-up grade per entry, and the destinations (sent to a worker once)."""
+
+    indptr: np.ndarray
+    indices: np.ndarray
+    length_m: np.ndarray
+    node_xy: np.ndarray
+    node_rank: np.ndarray
+    component: np.ndarray
+    req_clean: np.ndarray
+    local_aki: np.ndarray
+    d_node: np.ndarray
+    d_weight: np.ndarray
+    candidate_aki: np.ndarray
+    params: CorridorParams
+
+
+@dataclass(frozen=True, eq=False)
+class _SourceBatch:
+    """One partition of sources: station rows, their nodes, volumes, grades and the
+    destinations each must skip (its own row)."""
+
+    rows: np.ndarray
+    node: np.ndarray
+    volume_l: np.ndarray
+    aki: np.ndarray
+    exclude: list
+
+
+def _cut(net: _Network, node: np.ndarray) -> tuple[Any, np.ndarray, np.ndarray, np.ndarray]:
+    """The subgraph a partition routes on: nodes in its sources' bounding box grown by the
+    tank range and margin, numbered along the whole graph's Morton curve (nearby nodes close
+    in memory), with their entries sorted by (tail, head) in that numbering.
+
+    The numbering depends on the whole graph only, so any two cuts order their common nodes
+    and entries alike, and a tree grown on either is the same.
+
+    Returns (adjacency, global node of each local node, global entry of each local entry,
+    sorted key tail·k + head of each local entry)."""
+    r = net.params.tank_range_km * _M_PER_KM * (1.0 + CUT_MARGIN_SHARE)
+    xy = net.node_xy
+    n = xy.shape[0]
+    sxy = xy[node]
+    x0, y0 = sxy.min(axis=0) - r
+    x1, y1 = sxy.max(axis=0) + r
+    keep = (xy[:, 0] >= x0) & (xy[:, 0] <= x1) & (xy[:, 1] >= y0) & (xy[:, 1] <= y1)
+    nodes = np.flatnonzero(keep).astype(np.int64)
+    nodes = nodes[np.argsort(net.node_rank[nodes], kind="stable")]
+    k = nodes.size
+    local = np.full(n, -1, dtype=np.int64)
+    local[nodes] = np.arange(k)
+    tails = np.repeat(np.arange(n, dtype=np.int64), np.diff(net.indptr))
+    ents = np.flatnonzero(keep[tails] & keep[net.indices]).astype(np.int64)
+    key = local[tails[ents]] * k + local[net.indices[ents]]
+    perm = np.argsort(key, kind="stable")
+    ents = ents[perm]
+    key = key[perm]
+    indptr = np.zeros(k + 1, dtype=np.int64)
+    np.cumsum(np.bincount(key // max(k, 1), minlength=k), out=indptr[1:])
+    adj = sparse.csr_matrix((net.length_m[ents], key % max(k, 1), indptr), shape=(k, k))
+    return adj, nodes, ents, key
+
+
+def _corridor_partition(part: _SourceBatch, net: _Network) -> dict[str, Any]:
+    """Routes one partition of sources on its subgraph and prices their trees (steps 1–7 of
+    the module docstring). Per source: the station results; per local entry: the sums over
+    the partition's sources, in source order (each tree uses an entry at most once)."""
+    params = net.params
+    r_m = params.tank_range_km * _M_PER_KM
+    r_km = params.tank_range_km
+    dilution = params.refill_dilution
+    adj, nodes, ents, keys = _cut(net, part.node)
+    k_all = nodes.size
+    nnz = ents.size
+    local = np.full(net.node_xy.shape[0], -1, dtype=np.int64)
+    local[nodes] = np.arange(k_all)
+    src_local = local[part.node]
+    d_local = local[net.d_node]
+    d_in = d_local >= 0
+    d_xy = net.node_xy[net.d_node]
+    d_comp = net.component[net.d_node]
+    ent_len = net.length_m[ents]
+    req_clean = net.req_clean[ents]
+    loc = net.local_aki[ents]
+    n_bins = req_clean.shape[1]
+    cand = net.candidate_aki
+    m = part.rows.size
+    out: dict[str, Any] = {
+        "routed": np.zeros(m, dtype=bool),
+        "sent": np.zeros(m),
+        "delivered": np.zeros(m),
+        "beyond": np.zeros(m),
+        "export_risk": np.zeros(m),
+        "vd_total": np.zeros(m),
+        "vd_deficit": np.zeros(m),
+        "vd_deficit_cand": np.zeros((m, cand.size)),
+        "destinations_reached": np.zeros(m, dtype=np.int64),
+        "nodes_reached": np.zeros(m, dtype=np.int64),
+        "subgraph_nodes": int(k_all),
+    }
+    acc = np.zeros((len(_ACC_FIELDS), nnz))
+    work = TreeWork(k_all, nnz)
+    # A tree may stop once every destination that could lie within the range is settled:
+    # the flows use only the paths to them. Those within straight-line reach R(1 + margin)
+    # of the source are inside every cut, so the stopping point is the same on any cut.
+    targets = np.zeros(k_all, dtype=bool)
+    reach_m = r_m * (1.0 + CUT_MARGIN_SHARE)
+    d_live = d_in & (net.d_weight > 0)
+    indptr = np.asarray(adj.indptr, dtype=np.int64)
+    indices = np.asarray(adj.indices, dtype=np.int64)
+    t_dij = 0.0
+    for j in range(m):
+        t0 = time.perf_counter()
+        near = d_live & (np.hypot(*(d_xy - net.node_xy[part.node[j]]).T) <= reach_m)
+        targets[d_local[near]] = True
+        k = bounded_tree(indptr, indices, ent_len, src_local[j], r_m, work, targets)
+        targets[d_local[near]] = False
+        t_dij += time.perf_counter() - t0
+        d = work.dist
+        w = net.d_weight
+        if part.exclude[j] is not None:
+            w = w.copy()
+            w[part.exclude[j]] = 0.0
+        dd = np.full(d_local.size, np.inf)
+        dd[d_in] = d[d_local[d_in]]
+        fin = np.isfinite(dd)
+        live = w > 0
+        reach = fin & live
+        far = ~fin & live & (d_comp == net.component[part.node[j]])
+        f = np.zeros(d_local.size)
+        f[reach] = decay_weight(dd[reach] / _M_PER_KM, params)
+        if far.any():
+            eu = np.hypot(*(d_xy[far] - net.node_xy[part.node[j]]).T)
+            f[far] = decay_weight(np.maximum(eu, r_m) / _M_PER_KM, params)
+        g = w * f
+        tot = g.sum()
+        out["nodes_reached"][j] = k
+        if not tot > 0:
+            continue
+        vol = part.volume_l[j]
+        q = vol * (g / tot)
+        out["routed"][j] = True
+        out["sent"][j] = vol
+        out["beyond"][j] = q[far].sum()
+        out["destinations_reached"][j] = int(reach.sum())
+        # demand at the destination nodes (in destination order), then subtree sums
+        np.add.at(work.flow, d_local[reach], q[reach])
+        flow_at = tree_flows(work)
+        out["delivered"][j] = flow_at[src_local[j]]
+        settled = work.order[1:k]
+        head = settled[flow_at[settled] > 0]
+        if head.size == 0:
+            continue
+        head = np.sort(head)  # entry order of a tree's edges: by head node
+        tail = work.pred_node[head]
+        flow = flow_at[head]
+        ent = work.pred_entry[head]
+        a = d[tail]
+        ell = ent_len[ent]
+        vd = flow * _share_integral_m(a, a + ell, r_m) / _M_PER_KM
+        mid = a + 0.5 * ell
+        x = dilution * (1.0 - tank_share(mid, r_m)) if dilution > 0 else None
+
+        def tank_at(grade: float, x=x, n_fl=head.size, ent=ent) -> np.ndarray:
+            if x is None:
+                return np.full(n_fl, grade)
+            return _blend(np.full(n_fl, grade), loc[ent], x)
+
+        tank = tank_at(part.aki[j])
+        req_e = req_clean[ent]
+        dbin = np.maximum(req_e - tank[:, None], 0.0)
+        deficit = dbin.sum(axis=1) / n_bins
+        # share of the edge's length (its elevation bins) in deficit
+        in_deficit = np.count_nonzero(dbin > 0, axis=1) / n_bins
+        risk = vd * deficit / r_km
+        out["export_risk"][j] = risk.sum()
+        out["vd_total"][j] = vd.sum()
+        out["vd_deficit"][j] = (vd * in_deficit).sum()
+        for c, grade in enumerate(cand):
+            if not grade > part.aki[j]:  # only grades above today's are asked about
+                out["vd_deficit_cand"][j, c] = np.nan
+                continue
+            in_def_c = np.count_nonzero(req_e > tank_at(grade)[:, None], axis=1) / n_bins
+            out["vd_deficit_cand"][j, c] = (vd * in_def_c).sum()
+        for row, vals in enumerate(
+            (flow, vd, risk, flow * mid, vd * tank, vd * deficit, np.ones(head.size))
+        ):
+            acc[row, ent] += vals
+    work.reset()
+    used = np.flatnonzero(acc[6] > 0)
+    out["entries"] = ents[used]
+    out["acc"] = acc[:, used]
+    out["dijkstra_s"] = t_dij
+    return out
 
 
 def corridor_lines(
@@ -685,34 +875,49 @@ def corridor_lines(
     """
     ed = result.edges
     cols = [
-        "edge", "u", "v", "direction", "flow_l_per_month", "flow_forward_l_per_month",
-        "flow_reverse_l_per_month", "deficit_aki", "required_aki", "risk_l_aki_per_month",
-        "sources_count", "length_m", "road_class",
+        "edge",
+        "u",
+        "v",
+        "direction",
+        "flow_l_per_month",
+        "flow_forward_l_per_month",
+        "flow_reverse_l_per_month",
+        "deficit_aki",
+        "required_aki",
+        "risk_l_aki_per_month",
+        "sources_count",
+        "length_m",
+        "road_class",
     ]
     if ed.empty:
         return gpd.GeoDataFrame({c: [] for c in cols}, geometry=[], crs=graph.crs)
     fwd = ed["direction"].to_numpy() == "forward"
     e = ed["edge"].to_numpy()
     flow = ed["flow_l_per_month"].to_numpy()
-    g = pd.DataFrame(
-        {
-            "edge": e,
-            "flow_f": np.where(fwd, flow, 0.0),
-            "flow_r": np.where(fwd, 0.0, flow),
-            "vd": ed["volume_distance_l_km_per_month"].to_numpy(),
-            "vddef": ed["volume_distance_l_km_per_month"].to_numpy() * ed["deficit_aki"].to_numpy(),
-            "req": ed["required_aki"].to_numpy(),
-            "risk": ed["risk_l_aki_per_month"].to_numpy(),
-            "count": ed["sources_count"].to_numpy(),
-        }
-    ).groupby("edge", sort=True).agg(
-        flow_f=("flow_f", "sum"),
-        flow_r=("flow_r", "sum"),
-        vd=("vd", "sum"),
-        vddef=("vddef", "sum"),
-        req=("req", "max"),
-        risk=("risk", "sum"),
-        count=("count", "sum"),
+    g = (
+        pd.DataFrame(
+            {
+                "edge": e,
+                "flow_f": np.where(fwd, flow, 0.0),
+                "flow_r": np.where(fwd, 0.0, flow),
+                "vd": ed["volume_distance_l_km_per_month"].to_numpy(),
+                "vddef": ed["volume_distance_l_km_per_month"].to_numpy()
+                * ed["deficit_aki"].to_numpy(),
+                "req": ed["required_aki"].to_numpy(),
+                "risk": ed["risk_l_aki_per_month"].to_numpy(),
+                "count": ed["sources_count"].to_numpy(),
+            }
+        )
+        .groupby("edge", sort=True)
+        .agg(
+            flow_f=("flow_f", "sum"),
+            flow_r=("flow_r", "sum"),
+            vd=("vd", "sum"),
+            vddef=("vddef", "sum"),
+            req=("req", "max"),
+            risk=("risk", "sum"),
+            count=("count", "sum"),
+        )
     )
     total = g["flow_f"] + g["flow_r"]
     keep = (total > min_flow_l_per_month) | (g["risk"] > 0)

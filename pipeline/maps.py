@@ -22,7 +22,14 @@ from pipeline.webmap import (
     build_map_html,
 )
 
-__all__ = ["VERDICT_STYLE", "ZONE_COLORS", "station_map_spec", "audience_maps", "basemap_of"]
+__all__ = [
+    "VERDICT_STYLE",
+    "ZONE_COLORS",
+    "audience_maps",
+    "basemap_of",
+    "busiest",
+    "station_map_spec",
+]
 
 #: Verdict colours (Okabe–Ito) and plain labels for the legend.
 VERDICT_STYLE = CategoryStyle(
@@ -87,8 +94,34 @@ def town_layer(towns: gpd.GeoDataFrame, visible: bool) -> MapLayer:
     )
 
 
-def road_layer(roads: gpd.GeoDataFrame) -> MapLayer:
-    """Roads in greys, wider with traffic where the layer gives it."""
+def busiest(
+    gdf: gpd.GeoDataFrame | None, budget: int, by: tuple[str, ...]
+) -> tuple[gpd.GeoDataFrame | None, int]:
+    """At most ``budget`` rows of ``gdf``: the largest by the ``by`` columns (those present,
+    in turn; ties kept in input order), in input order. Returns (rows, total rows).
+
+    A browser map cannot draw a whole state's road network; the GeoPackage keeps every row."""
+    if gdf is None:
+        return None, 0
+    total = len(gdf)
+    if total <= budget:
+        return gdf, total
+    cols = [c for c in by if c in gdf.columns]
+    if not cols:
+        return gdf.iloc[:budget], total
+    keys = [np.nan_to_num(gdf[c].to_numpy(float), nan=-np.inf) for c in reversed(cols)]
+    order = np.lexsort((np.arange(total), *(-k for k in keys)))
+    keep = np.sort(order[:budget])
+    return gdf.iloc[keep], total
+
+
+def _shown(name: str, gdf: gpd.GeoDataFrame, total: int, what: str) -> str:
+    return name if len(gdf) >= total else f"{name} ({what} {len(gdf):,} of {total:,})"
+
+
+def road_layer(roads: gpd.GeoDataFrame, total: int | None = None) -> MapLayer:
+    """Roads in greys, wider with traffic where the layer gives it (``total``: rows before
+    :func:`busiest` thinned them, named in the layer label)."""
     style = None
     if "aadt" in roads.columns:
         style = RampStyle(
@@ -105,15 +138,16 @@ def road_layer(roads: gpd.GeoDataFrame) -> MapLayer:
             column="road_kind", colors={"road": "#6b6b6b"}, labels={"road": "Road"}
         )
     return MapLayer(
-        name="Roads",
+        name=_shown("Roads", roads, total or len(roads), "busiest"),
         gdf=roads,
         style=style,
         popup_fields=_present(roads, (("road_class", "Class"), ("aadt", "Traffic [veh/day]"))),
     )
 
 
-def corridor_layer(corridors: gpd.GeoDataFrame) -> MapLayer | None:
-    """Corridors drawn by risk: width and a colour ramp by ``risk_l_aki_per_month``."""
+def corridor_layer(corridors: gpd.GeoDataFrame, total: int | None = None) -> MapLayer | None:
+    """Corridors drawn by risk: width and a colour ramp by ``risk_l_aki_per_month``
+    (``total``: rows before :func:`busiest` thinned them, named in the layer label)."""
     if corridors is None or not len(corridors):
         return None
     risk = corridors["risk_l_aki_per_month"].to_numpy(float)
@@ -127,7 +161,7 @@ def corridor_layer(corridors: gpd.GeoDataFrame) -> MapLayer | None:
         RISK_COLORS[-(len(breaks) + 1) :] if len(breaks) + 1 <= len(RISK_COLORS) else RISK_COLORS
     )
     return MapLayer(
-        name="Descent corridors (risk)",
+        name=_shown("Descent corridors (risk)", corridors, total or len(corridors), "riskiest"),
         gdf=corridors,
         style=RampStyle(
             column="risk_l_aki_per_month",
@@ -201,8 +235,11 @@ def station_map_spec(
     subtitle: str,
     generated_note: str = "",
     station_popup: Sequence[tuple[str, str]] = STATION_POPUP,
+    road_total: int | None = None,
+    corridor_total: int | None = None,
 ) -> MapSpec:
-    """The stations map: justified-AKI zones, roads, towns, corridors, stations by verdict."""
+    """The stations map: justified-AKI zones, roads, towns, corridors, stations by verdict
+    (``*_total``: rows before :func:`busiest` thinned a layer)."""
     layers: list[MapLayer] = []
     if zones is not None and len(zones):
         layers.append(
@@ -218,10 +255,10 @@ def station_map_spec(
             )
         )
     if roads is not None and len(roads):
-        layers.append(road_layer(roads))
+        layers.append(road_layer(roads, road_total))
     if towns is not None and len(towns):
         layers.append(town_layer(towns, visible=False))
-    cl = corridor_layer(corridors)
+    cl = corridor_layer(corridors, corridor_total)
     if cl is not None:
         layers.append(cl)
     st_style = VERDICT_STYLE if "verdict" in stations.columns else None
@@ -410,6 +447,11 @@ def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected)
     cfg = ctx.config
     roads, towns, fleet_zones = _read_optional(cfg)
     corridors = up.get("corridors", {}).get("corridors")
+    budget = cfg.outputs.map_max_lines
+    roads, road_total = busiest(roads, budget, ("aadt",))
+    corridors, corridor_total = busiest(
+        corridors, budget, ("risk_l_aki_per_month", "flow_l_per_month")
+    )
     plans = up.get("plans", {})
     basemap = basemap_of(up.get("terrain", {}))
     note = f"Run date {ctx.today.isoformat()} · altigrade"
@@ -423,6 +465,8 @@ def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected)
         towns=towns,
         rejected=rejected,
         corridors=corridors,
+        road_total=road_total,
+        corridor_total=corridor_total,
         basemap=basemap,
         title=f"Inspection planning map — {cfg.name}",
         subtitle="Verdicts, justified-AKI zones, descent corridors, priorities "
@@ -503,8 +547,8 @@ def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected)
                 )
             )
         if roads is not None:
-            dl.append(road_layer(roads))
-        cl = corridor_layer(corridors)
+            dl.append(road_layer(roads, road_total))
+        cl = corridor_layer(corridors, corridor_total)
         if cl is not None:
             dl.append(cl)
         dl.append(_station_layer(st, CHANGE_STYLE, PLAN_POPUP))
@@ -534,7 +578,7 @@ def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected)
             )
         )
     if roads is not None:
-        pl.append(road_layer(roads))
+        pl.append(road_layer(roads, road_total))
     if towns is not None and len(towns):
         pl.append(town_layer(towns, visible=True))
     pl.append(_station_layer(pub, GRADE_STYLE, PUBLIC_POPUP, name="Fuel stations"))

@@ -92,6 +92,8 @@ __all__ = [
     "metric_crs_for",
     "dem_spacing_m",
     "edge_profiles",
+    "line_profiles",
+    "profile_spacing_m",
     "snap_points",
     "PROFILE_COLUMNS",
     "PROFILE_ELEVATION_FRACTIONS",
@@ -393,8 +395,10 @@ def metric_crs_for(geoms: np.ndarray, crs: CRS | str) -> CRS:
     (WGS 84) centred on the data (distances from the centre true to scale; Snyder 1987, §25).
     """
     crs = CRS.from_user_input(crs)
-    if crs.is_projected and crs.axis_info and all(
-        (a.unit_name or "").lower() in ("metre", "meter", "m") for a in crs.axis_info[:2]
+    if (
+        crs.is_projected
+        and crs.axis_info
+        and all((a.unit_name or "").lower() in ("metre", "meter", "m") for a in crs.axis_info[:2])
     ):
         return crs
     b = shapely.total_bounds(geoms)
@@ -441,9 +445,7 @@ def _drop_repeated(xy: np.ndarray, line_id: np.ndarray) -> np.ndarray:
     """Mask keeping a vertex unless it equals the previous vertex of the same line."""
     if xy.shape[0] == 0:
         return np.zeros(0, dtype=bool)
-    same = (
-        (line_id[1:] == line_id[:-1]) & (xy[1:, 0] == xy[:-1, 0]) & (xy[1:, 1] == xy[:-1, 1])
-    )
+    same = (line_id[1:] == line_id[:-1]) & (xy[1:, 0] == xy[:-1, 0]) & (xy[1:, 1] == xy[:-1, 1])
     return np.r_[True, ~same]
 
 
@@ -711,8 +713,10 @@ def build_road_graph(
         if not work_crs.is_projected:
             raise RoadGraphError(f"metric_crs must be a projected CRS; got {work_crs.name!r}")
     else:
-        work_crs = metric_crs_for(parts, src_crs) if parts.size else (
-            src_crs if src_crs.is_projected else CRS.from_epsg(3857)
+        work_crs = (
+            metric_crs_for(parts, src_crs)
+            if parts.size
+            else (src_crs if src_crs.is_projected else CRS.from_epsg(3857))
         )
     stats["metric_crs"] = work_crs.to_string()
     parts = _transform_geoms(parts, src_crs, work_crs)
@@ -734,7 +738,7 @@ def build_road_graph(
     xy, lid = xy[keep], lid[keep]
     counts = np.bincount(lid, minlength=n_lines)
     # Lines with at least one valid vertex but < 2 distinct ones are zero-length.
-    stats["zero_length_dropped"] = int(((counts == 1)).sum())
+    stats["zero_length_dropped"] = int((counts == 1).sum())
     geoms = _lines_from_coords(xy, lid, n_lines)
 
     # 4. Exact duplicates.
@@ -994,7 +998,7 @@ def _lookup_rows(table: np.ndarray, q: np.ndarray) -> np.ndarray:
     # Rows of ``table`` are unique, so each unique row has at most one table member.
     owner = np.full(both.shape[0], -1, dtype=np.int64)
     owner[inv[: table.shape[0]]] = np.arange(table.shape[0])
-    return owner[inv[table.shape[0]:]]
+    return owner[inv[table.shape[0] :]]
 
 
 def _geodesic_lengths(geoms: np.ndarray, crs: CRS) -> np.ndarray:
@@ -1206,19 +1210,55 @@ def edge_profiles(
     and dip tolerance are planning choices (from memory: highway design guides treat grades
     above about 4–5 % sustained over a kilometre or more as climbing-lane candidates).
     """
-    m = graph.n_edges
-    empty = pd.DataFrame({c: np.zeros(0) for c in PROFILE_COLUMNS})
     if ds.crs is None:
         raise RoadGraphError("the DEM has no CRS")
     if spacing_m is None:
-        lat = None
-        if CRS.from_user_input(ds.crs).is_geographic and m:
-            b = shapely.total_bounds(graph.geometry)
-            _, lat_c = transform_points(
-                [(b[0] + b[2]) / 2], [(b[1] + b[3]) / 2], graph.crs, "EPSG:4326"
-            )
-            lat = float(lat_c[0])
-        spacing_m = dem_spacing_m(ds, latitude_deg=lat)
+        spacing_m = profile_spacing_m(graph, ds)
+    return line_profiles(
+        graph.geometry,
+        graph.length_m,
+        graph.crs,
+        ds,
+        spacing_m=spacing_m,
+        climb_grade_threshold_pct=climb_grade_threshold_pct,
+        dip_tolerance_m=dip_tolerance_m,
+        band=band,
+    )
+
+
+def profile_spacing_m(graph: RoadGraph, ds: Any) -> float:
+    """Default densification spacing of :func:`edge_profiles` [m]: the DEM cell size, taken
+    at the graph's mid-latitude for a geographic DEM (:func:`dem_spacing_m`)."""
+    lat = None
+    if CRS.from_user_input(ds.crs).is_geographic and graph.n_edges:
+        b = shapely.total_bounds(graph.geometry)
+        _, lat_c = transform_points(
+            [(b[0] + b[2]) / 2], [(b[1] + b[3]) / 2], graph.crs, "EPSG:4326"
+        )
+        lat = float(lat_c[0])
+    return dem_spacing_m(ds, latitude_deg=lat)
+
+
+def line_profiles(
+    geometry: np.ndarray,
+    length_m: np.ndarray,
+    crs: Any,
+    ds: Any,
+    *,
+    spacing_m: float,
+    climb_grade_threshold_pct: float = 4.0,
+    dip_tolerance_m: float | None = None,
+    band: int = 1,
+) -> pd.DataFrame:
+    """:func:`edge_profiles` of any set of lines: ``geometry`` (LineStrings in ``crs``) with
+    their lengths ``length_m`` [m], densified every ``spacing_m`` [m]. Each line's statistics
+    depend on that line and the DEM alone, so a graph's edges may be profiled in any
+    partition and put back together. Rows follow the input (index 0 … m−1, name ``edge``)."""
+    m = int(len(geometry))
+    empty = pd.DataFrame({c: np.zeros(0) for c in PROFILE_COLUMNS})
+    if ds.crs is None:
+        raise RoadGraphError("the DEM has no CRS")
+    length_m = np.asarray(length_m, dtype=float)
     spacing_m = float(spacing_m)
     if not spacing_m > 0:
         raise RoadGraphError("profile spacing must be > 0 m")
@@ -1232,9 +1272,9 @@ def edge_profiles(
     if m == 0:
         empty.attrs.update(attrs)
         return empty
-    dens = shapely.segmentize(graph.geometry, max_segment_length=spacing_m)
+    dens = shapely.segmentize(np.asarray(geometry), max_segment_length=spacing_m)
     xy, eid = shapely.get_coordinates(dens, return_index=True)
-    sx, sy = transform_points(xy[:, 0], xy[:, 1], graph.crs, ds.crs)
+    sx, sy = transform_points(xy[:, 0], xy[:, 1], crs, ds.crs)
     res = sample_dem(ds, sx, sy, band=band)
     attrs["blocks_read"] = int(res.blocks_read)
     z = np.asarray(res.value, dtype=float)
@@ -1251,7 +1291,7 @@ def edge_profiles(
     planar = np.hypot(xy[1:, 0] - xy[:-1, 0], xy[1:, 1] - xy[:-1, 1])[same]
     planar_sum = np.bincount(seg_edge, weights=planar, minlength=m)
     with np.errstate(invalid="ignore", divide="ignore"):
-        scale = np.where(planar_sum > 0, graph.length_m / planar_sum, 1.0)
+        scale = np.where(planar_sum > 0, length_m / planar_sum, 1.0)
     seg_len = planar * scale[seg_edge]
     z0 = z[:-1][same]
     z1 = z[1:][same]
@@ -1269,7 +1309,11 @@ def edge_profiles(
         zmean = np.where(len_valid > 0, zsum / len_valid, zvert_mean)
 
     quant = _length_quantiles(
-        np.where(valid, 0.5 * (z0 + z1), np.nan), seg_len, seg_edge, valid, m,
+        np.where(valid, 0.5 * (z0 + z1), np.nan),
+        seg_len,
+        seg_edge,
+        valid,
+        m,
         PROFILE_ELEVATION_FRACTIONS,
     )
 

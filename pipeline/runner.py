@@ -75,6 +75,8 @@ class StageContext:
     counts: dict[str, Any] = field(default_factory=dict)
     #: SHA-256 of every input file hashed so far (all of them by the last stage).
     inputs_sha256: dict[str, str] = field(default_factory=dict)
+    #: Runs a stage's partitions (:class:`pipeline.execution.Executor`); None: in this process.
+    executor: Any = None
 
 
 @dataclass
@@ -160,8 +162,10 @@ def run_stages(
     today: dt.date,
     progress: Progress | None = None,
     log: Callable[[str], None] | None = None,
+    executor: Any = None,
 ) -> RunResult:
-    """Run ``stages`` in order (each stage's ``needs`` must come earlier)."""
+    """Run ``stages`` in order (each stage's ``needs`` must come earlier); ``executor`` runs
+    the partitions of the stages that split their work (None: in this process)."""
     out_dir = Path(out_dir)
     cache_root = out_dir / ".stages"
     progress = progress or (lambda label, frac: None)
@@ -193,7 +197,9 @@ def run_stages(
         keys[stage.name] = key
         stage_dir = cache_root / stage.name
         key_file = stage_dir / "key.json"
-        ctx = StageContext(config, out_dir, today, progress, log, stage_dir, counts, input_hashes)
+        ctx = StageContext(
+            config, out_dir, today, progress, log, stage_dir, counts, input_hashes, executor
+        )
         if stage.cacheable and config.execution.reuse_unchanged_stages and key_file.exists():
             try:
                 meta = json.loads(key_file.read_text(encoding="utf-8"))
@@ -241,6 +247,7 @@ def run_stages(
         "stages_reused": reused,
         "timings_s": {k: round(v, 3) for k, v in timings.items()},
         "counts": counts,
+        "execution": executor.describe() if executor is not None else {"mode": "local"},
         "package_versions": _package_versions(),
     }
     return RunResult(out_dir, artefacts, manifest)

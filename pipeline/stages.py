@@ -21,7 +21,9 @@ from pipeline import atmosphere, io, terrain
 from pipeline.config import RunConfig
 from pipeline.corridor_stage import corridors_stage
 from pipeline.errors import InputFileError
+from pipeline.execution import make_executor
 from pipeline.ingest import validate_stations
+from pipeline.partitions import morton_key, partition_slices
 from pipeline.plan_stage import plans_stage
 from pipeline.runner import RunResult, Stage, StageContext, run_stages
 
@@ -69,7 +71,6 @@ def _terrain(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         x, y = terrain.transform_points(
             st["lon"].to_numpy(float), st["lat"].to_numpy(float), "EPSG:4326", ds.crs
         )
-        res = terrain.sample_dem(ds, x, y)
         # Where would each station fall with lon and lat swapped? (for the reject reason)
         sx, sy = terrain.transform_points(
             st["lat"].to_numpy(float), st["lon"].to_numpy(float), "EPSG:4326", ds.crs
@@ -89,6 +90,7 @@ def _terrain(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
             "bounds": list(ds.bounds),
             "block_shape": list(ds.block_shapes[0]),
         }
+    res = sample_stations(ctx, ctx.config.inputs.dem, x, y)
     st["dem_x"] = x
     st["dem_y"] = y
     st["elevation_m"] = np.round(res.value, 2)
@@ -132,6 +134,45 @@ def _terrain(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         st = st[~unplaced].reset_index(drop=True)
         ctx.counts["rows_rejected_terrain"] = int(unplaced.sum())
     return {"stations": st, "rejected": rejected, **basemap}
+
+
+def _map(ctx: StageContext, fn: Callable, items: list, shared: dict[str, Any]) -> list:
+    """``fn(item, **shared)`` over items, by the run's executor (in this process without)."""
+    if ctx.executor is None:
+        return [fn(item, **shared) for item in items]
+    return ctx.executor.map(fn, items, shared=shared)
+
+
+def _sample_part(item: tuple[np.ndarray, np.ndarray, np.ndarray], *, dem: Path):
+    idx, x, y = item
+    with io.open_dem(dem) as ds:
+        r = terrain.sample_dem(ds, x, y)
+    return idx, r.value, r.status, r.blocks_read
+
+
+def sample_stations(ctx: StageContext, dem: Path, x: np.ndarray, y: np.ndarray):
+    """:func:`pipeline.terrain.sample_dem` of the points (DEM CRS) in spatial partitions of
+    ``execution.partition_stations`` points along a Morton curve, each opening the DEM where
+    it runs. A point's value and status depend on that point and the DEM alone, so the
+    result equals the one-piece call to the bit; ``blocks_read`` adds up the partitions'."""
+    n = x.size
+    ok = np.isfinite(x) & np.isfinite(y)
+    key = np.full(n, np.iinfo(np.uint64).max, dtype=np.uint64)
+    key[ok] = morton_key(np.column_stack([x[ok], y[ok]]))
+    order = np.argsort(key, kind="stable")
+    size = ctx.config.execution.partition_stations
+    items = []
+    for sl in partition_slices(n, size) or [slice(0, 0)]:
+        idx = np.sort(order[sl])
+        items.append((idx, x[idx], y[idx]))
+    value = np.full(n, np.nan)
+    status = np.empty(n, dtype=object)
+    blocks = 0
+    for idx, v, stt, b in _map(ctx, _sample_part, items, {"dem": dem}):
+        value[idx] = v
+        status[idx] = stt
+        blocks += b
+    return terrain.SampleResult(value, status.astype(str) if n else np.zeros(0, dtype=str), blocks)
 
 
 def _as_rejected(gdf: gpd.GeoDataFrame, reasons: list[str]) -> gpd.GeoDataFrame:
@@ -262,25 +303,43 @@ def _fleet(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
 
 
 # -------------------------------------------------------------------------------- zones
+def _zone_part(tiles: list, *, dem: Path, fleet_zones, options: dict[str, Any]) -> list:
+    from pipeline.zones import tile_bands
+
+    with io.open_dem(dem) as ds:
+        return tile_bands(ds, tiles, fleet_zones=fleet_zones, **options)
+
+
 def _zones(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
-    """Makes ``justified_zones`` (DEM CRS): bands of justified minimum AKI."""
-    from pipeline.zones import justified_zones
+    """Makes ``justified_zones`` (DEM CRS): bands of justified minimum AKI, computed tile by
+    tile in partitions of ``execution.partition_tiles`` tiles (each opening the DEM where it
+    runs) and dissolved here in tile order."""
+    from pipeline.zones import assemble_zones, zone_tiles
 
     cfg = ctx.config
     if not cfg.zones.enabled:
         return {}
+    options = {
+        "params": cfg.fleet,
+        "design": cfg.design_day,
+        "default_mix": dict(cfg.fleet_mix.shares),
+        "share_prefix": cfg.fleet_mix.zone_share_prefix,
+        "band_edges": tuple(cfg.zones.band_edges_aki),
+        "resolution_m": cfg.zones.resolution_m,
+    }
     with io.open_dem(cfg.inputs.dem) as ds:
-        gdf, stats = justified_zones(
+        tiles = zone_tiles(ds, cfg.zones.resolution_m, cfg.zones.tile_cells)
+    parts = [tiles[sl] for sl in partition_slices(len(tiles), cfg.execution.partition_tiles)]
+    shared = {"dem": cfg.inputs.dem, "fleet_zones": _read_fleet_zones(cfg), "options": options}
+    results = [r for part in _map(ctx, _zone_part, parts, shared) for r in part]
+    ctx.progress("zones", 0.9)
+    with io.open_dem(cfg.inputs.dem) as ds:
+        gdf, stats = assemble_zones(
             ds,
-            params=cfg.fleet,
-            design=cfg.design_day,
-            default_mix=cfg.fleet_mix.shares,
-            fleet_zones=_read_fleet_zones(cfg),
-            share_prefix=cfg.fleet_mix.zone_share_prefix,
-            band_edges=cfg.zones.band_edges_aki,
+            results,
+            band_edges=options["band_edges"],
             resolution_m=cfg.zones.resolution_m,
             tile_cells=cfg.zones.tile_cells,
-            progress=lambda f: ctx.progress("zones", f),
         )
     ctx.counts["zones"] = stats
     return {"justified_zones": gdf}
@@ -565,12 +624,18 @@ STAGES: list[Stage] = [
             "corridors": c.corridors.model_dump(mode="json"),
             **_model_params(c),
             "defaults": c.station_defaults.model_dump(mode="json"),
+            # how the work is cut fixes the order of the edge sums; the mode does not matter
+            "partitions": c.execution.model_dump(
+                mode="json", include={"partition_sources", "partition_edges"}
+            ),
         },
         input_files=lambda c: _dem_files(c) + [p for p in (c.inputs.roads, c.inputs.towns) if p],
         modules=(
             "pipeline.corridor_stage",
+            "pipeline.partitions",
             "pipeline.roadgraph",
             "pipeline.corridors",
+            "pipeline.shortest_paths",
             "pipeline.requirement",
             "pipeline.terrain_routes",
         ),
@@ -623,9 +688,16 @@ def run(
     _check_out_dir(out)
     _check_inputs_not_in(out, config)
     today = today or run_date()
-    result = run_stages(
-        [*STAGES, _publish_stage()], config, out, today=today, progress=progress, log=log
-    )
+    with make_executor(config.execution, config.source) as executor:
+        result = run_stages(
+            [*STAGES, _publish_stage()],
+            config,
+            out,
+            today=today,
+            progress=progress,
+            log=log,
+            executor=executor,
+        )
     result.manifest["outputs"] = result.manifest["counts"].pop("outputs", []) + ["manifest.json"]
     io.write_text_atomic(out / "manifest.json", json.dumps(result.manifest, indent=2, default=str))
     return result

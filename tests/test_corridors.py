@@ -202,8 +202,8 @@ def test_flows_are_conserved_per_source(seed):
 
 
 def test_a_large_unreachable_part_of_the_graph_changes_nothing():
-    """The same network alone and beside a bigger disconnected one (then fewer than half
-    the nodes are reached and the calculation runs on the reached nodes only)."""
+    """The same network alone and beside a bigger disconnected one (of which no node is ever
+    reached)."""
     graph, rng = random_graph(4, n=40, m=120)
     far = rg.graph_from_edges(np.c_[np.arange(100) * 1000.0 + 1e6, np.zeros(100)],
                               np.arange(99), np.arange(1, 100), crs=UTM)
@@ -217,8 +217,7 @@ def test_a_large_unreachable_part_of_the_graph_changes_nothing():
     params = co.CorridorParams(tank_range_km=60.0)
     a = co.compute_corridors(graph, flat_profiles(graph), st, None, toy_requirement, params)
     b = co.compute_corridors(both, flat_profiles(both), st, None, toy_requirement, params)
-    assert (b.stations["nodes_reached"] * 2 < both.n_nodes).all()
-    assert (a.stations["nodes_reached"] * 2 >= graph.n_nodes).any()
+    assert (b.stations["nodes_reached"] <= graph.n_nodes).all()
     pd.testing.assert_frame_equal(a.edges, b.edges)
     pd.testing.assert_frame_equal(a.stations, b.stations)
 

@@ -425,16 +425,22 @@ def test_all_files_written_are_under_out(small_demo_inputs, tmp_path) -> None:
     out = tmp_path / "result"
     log = tmp_path / "audit.json"
     env = _hook_env(tmp_path, f"audit:{log}")
-    env.update(HOME=str(home), TMPDIR=str(tmp_path / "tmp"), MPLCONFIGDIR=str(tmp_path / "mpl"))
+    env.update(
+        HOME=str(home),
+        TMPDIR=str(tmp_path / "tmp"),
+        MPLCONFIGDIR=str(tmp_path / "mpl"),
+        NUMBA_CACHE_DIR=str(tmp_path / "numba"),
+    )
     (tmp_path / "tmp").mkdir()
     before = _listing(cache) | _listing(work) | _listing(home)
     proc = subprocess.run(_demo_argv(cache, out), cwd=work, env=env, capture_output=True, text=True)
     assert proc.returncode == 0, proc.stderr
     writes = json.loads(log.read_text(encoding="utf-8"))
     assert any(Path(p).is_relative_to(out) for _, p in writes)  # the hook saw the outputs
-    # Allowed besides --out: matplotlib's font cache (a library cache, not an output; kept in
-    # MPLCONFIGDIR) and the hook's own log.
-    allowed = (out.resolve(), (tmp_path / "mpl").resolve())
+    # Allowed besides --out: matplotlib's font cache and Numba's compiled-function cache
+    # (library caches, not outputs; kept in MPLCONFIGDIR and NUMBA_CACHE_DIR) and the hook's
+    # own log.
+    allowed = (out.resolve(), (tmp_path / "mpl").resolve(), (tmp_path / "numba").resolve())
     outside = [
         (e, p)
         for e, p in writes

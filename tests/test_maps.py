@@ -1,0 +1,49 @@
+"""What each audience map shows at scale (pipeline.maps).
+
+Plain behaviour checks on invented lines: which rows a thinned layer keeps, and that its label
+says so.
+"""
+
+from __future__ import annotations
+
+import geopandas as gpd
+import numpy as np
+from shapely.geometry import LineString
+
+from pipeline.maps import busiest, corridor_layer, road_layer
+
+
+def lines(values: dict[str, list[float]]) -> gpd.GeoDataFrame:
+    n = len(next(iter(values.values())))
+    geoms = [LineString([(i, 0), (i, 1)]) for i in range(n)]
+    return gpd.GeoDataFrame(values, geometry=geoms, crs="EPSG:32608")
+
+
+def test_busiest_keeps_the_largest_rows_in_input_order():
+    g = lines({"aadt": [5.0, np.nan, 900.0, 40.0, 900.0, 7.0]})
+    kept, total = busiest(g, 3, ("aadt",))
+    assert total == 6
+    assert kept.index.tolist() == [2, 3, 4]  # 900, 40, 900 — in input order
+
+
+def test_busiest_breaks_ties_by_the_next_column_then_input_order():
+    g = lines({"risk": [0.0, 0.0, 3.0, 0.0], "flow": [10.0, 30.0, 1.0, 30.0]})
+    kept, _ = busiest(g, 2, ("risk", "flow"))
+    assert kept.index.tolist() == [1, 2]  # risk 3 first, then the first of the flow-30 tie
+
+
+def test_a_layer_within_budget_is_untouched_and_unlabelled():
+    g = lines({"aadt": [1.0, 2.0]})
+    kept, total = busiest(g, 10, ("aadt",))
+    assert kept is g and total == 2
+    assert road_layer(kept, total).name == "Roads"
+
+
+def test_thinned_layers_say_how_many_they_show():
+    g = lines({"aadt": np.arange(50.0)})
+    kept, total = busiest(g, 20, ("aadt",))
+    assert road_layer(kept, total).name == "Roads (busiest 20 of 50)"
+    c = lines({"risk_l_aki_per_month": np.arange(30.0), "flow_l_per_month": np.ones(30)})
+    kc, tc = busiest(c, 10, ("risk_l_aki_per_month", "flow_l_per_month"))
+    assert corridor_layer(kc, tc).name == "Descent corridors (risk) (riskiest 10 of 30)"
+    assert kc["risk_l_aki_per_month"].min() == 20.0

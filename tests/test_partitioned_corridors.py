@@ -1,0 +1,201 @@
+"""Corridors cut into partitions, on subgraphs, and run by each executor (pipeline.corridors,
+pipeline.execution).
+
+Outside references: scipy's Dijkstra on the whole graph (the subgraph cut must not change a
+distance within the tank range); the straightforward method of finding a station's corridor
+grade — re-running the whole calculation with the station's grade raised — against which the
+single-pass candidate shares are checked; and the same calculation in one process, against
+which the thread pool and a real two-worker Dask cluster on the loopback interface must agree
+to the bit. The graphs and fleet requirement are invented test data.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.sparse.csgraph import dijkstra
+
+from pipeline import corridors as co
+from pipeline import roadgraph as rg
+from pipeline.config import ExecutionConfig
+from pipeline.corridor_stage import corridor_required
+from pipeline.execution import make_executor
+
+UTM = "EPSG:32608"
+
+
+def toy_requirement(elev, grade, climb):
+    """Invented test fleet (not the project's model): 87.2 AKI at sea level, −1 AKI per
+    300 m of elevation, +0.2 AKI per % of uphill grade."""
+    return 87.2 - np.asarray(elev) / 300.0 + 0.2 * np.asarray(grade) + 0 * np.asarray(climb)
+
+
+def grid_graph(seed: int, side: int = 40, spacing_m: float = 2_000.0):
+    """A perturbed square grid (side² nodes) with random lengths ≥ the chord."""
+    rng = np.random.default_rng(seed)
+    ii, jj = np.meshgrid(np.arange(side), np.arange(side), indexing="ij")
+    xy = np.c_[jj.ravel() * spacing_m, ii.ravel() * spacing_m] + rng.uniform(
+        -300, 300, (side * side, 2)
+    )
+    idx = np.arange(side * side).reshape(side, side)
+    u = np.r_[idx[:, :-1].ravel(), idx[:-1, :].ravel()]
+    v = np.r_[idx[:, 1:].ravel(), idx[1:, :].ravel()]
+    length = np.hypot(*(xy[u] - xy[v]).T) * rng.uniform(1.0, 1.3, u.size)
+    return rg.graph_from_edges(xy, u, v, length, crs=UTM), rng
+
+
+def profiles_for(graph, rng):
+    m = graph.n_edges
+    elev = rng.uniform(0, 1_500, m)
+    return pd.DataFrame(
+        {
+            "elevation_min_m": elev - 20,
+            "elevation_mean_m": elev,
+            "elevation_max_m": elev + 20,
+            **{c: elev + k * 5.0 for k, c in enumerate(rg.PROFILE_QUANTILE_COLUMNS)},
+            "climb_forward_m": 0.0,
+            "climb_reverse_m": 0.0,
+            "grade_forward_pct": rng.uniform(0, 8, m),
+            "grade_reverse_pct": rng.uniform(0, 8, m),
+            "sustained_length_forward_m": 0.0,
+            "sustained_climb_forward_m": 0.0,
+            "sustained_length_reverse_m": 0.0,
+            "sustained_climb_reverse_m": 0.0,
+        }
+    )
+
+
+def stations_for(graph, rng, n=60):
+    return pd.DataFrame(
+        {
+            "node": rng.integers(0, graph.n_nodes, n),
+            "volume_l": rng.uniform(1e4, 1e5, n),
+            "aki": rng.choice([85.0, 85.5, 86.0, 87.0], n),
+            "id": [f"s{i}" for i in range(n)],
+        }
+    )
+
+
+@pytest.fixture(scope="module")
+def case():
+    graph, rng = grid_graph(11)
+    prof = profiles_for(graph, rng)
+    st = stations_for(graph, rng)
+    towns = pd.DataFrame(
+        {"node": rng.integers(0, graph.n_nodes, 12), "weight": rng.uniform(1e3, 1e5, 12)}
+    )
+    # a 30 km tank on an ~80 km grid: partitions really are cut to subgraphs
+    params = co.CorridorParams(tank_range_km=30.0, decay_km=10.0)
+    return graph, prof, st, towns, params
+
+
+def _run(case, **kw):
+    graph, prof, st, towns, params = case
+    return co.compute_corridors(graph, prof, st, towns, toy_requirement, params, **kw)
+
+
+def test_subgraph_cut_keeps_every_distance_within_the_range(case):
+    graph, _, st, _, params = case
+    net_nodes = np.array([0, 1, 2, 40, 41, 42, 80, 81])  # a corner of the 40 × 40 grid
+    r_m = params.tank_range_km * 1000.0
+    full = dijkstra(graph.adjacency, indices=net_nodes, limit=r_m)
+    # reference: scipy on the whole graph; the nodes within R are reached on the cut graph
+    part = co._SourceBatch(
+        rows=np.arange(8),
+        node=net_nodes,
+        volume_l=np.ones(8),
+        aki=np.full(8, 85.0),
+        exclude=[None] * 8,
+    )
+    net = co._Network(
+        indptr=graph.adjacency.indptr.astype(np.int64),
+        indices=graph.adjacency.indices.astype(np.int64),
+        length_m=graph.adjacency.data.astype(float),
+        node_xy=graph.node_xy,
+        node_rank=co._morton_rank(graph.node_xy),
+        component=graph.component,
+        req_clean=np.zeros((graph.adjacency.nnz, 1)),
+        local_aki=np.zeros(graph.adjacency.nnz),
+        d_node=np.zeros(0, dtype=np.int64),
+        d_weight=np.zeros(0),
+        candidate_aki=np.zeros(0),
+        params=params,
+    )
+    adj, nodes, _, _ = co._cut(net, part.node)
+    assert nodes.size < graph.n_nodes  # the cut did cut
+    local = np.full(graph.n_nodes, -1)
+    local[nodes] = np.arange(nodes.size)
+    cut = dijkstra(adj, indices=local[net_nodes], limit=r_m)
+    rows, cols = np.nonzero(np.isfinite(full))
+    assert np.all(local[cols] >= 0)  # every node within R is kept
+    np.testing.assert_array_equal(cut[rows, local[cols]], full[rows, cols])
+    assert np.isfinite(cut).sum() == rows.size  # and nothing else is reached
+
+
+def test_partitioning_leaves_station_results_unchanged_and_edges_to_rounding(case):
+    one = _run(case, sources_per_partition=10_000)
+    many = _run(case, sources_per_partition=3)
+    assert one.summary["partitions"] == 1 and many.summary["partitions"] > 5
+    # per station: each source's tree is computed alone, so partitioning changes no bit
+    pd.testing.assert_frame_equal(one.stations, many.stations, check_exact=True)
+    # per edge: sums over sources in another grouping, equal to rounding
+    pd.testing.assert_frame_equal(
+        one.edges.reset_index(drop=True), many.edges.reset_index(drop=True), rtol=1e-12
+    )
+    assert one.summary["sources"] > 20 and len(one.edges) > 100
+
+
+def test_candidate_shares_equal_a_rerun_with_the_raised_grade(case):
+    graph, prof, st, towns, params = case
+    cands = np.array([85.5, 86.0, 86.5])
+    res = _run(case, candidate_aki=cands, sources_per_partition=7)
+    for c, grade in enumerate(cands):
+        trial = st.copy()
+        trial["aki"] = np.where(trial["aki"] < grade, grade, trial["aki"])
+        rerun = co.compute_corridors(graph, prof, trial, towns, toy_requirement, params)
+        raised = (st["aki"] < grade).to_numpy() & res.stations["is_source"].to_numpy()
+        np.testing.assert_array_equal(
+            res.candidate_share_in_deficit[raised, c],
+            rerun.stations["fuel_share_in_deficit"].to_numpy()[raised],
+        )
+        others = ~raised & res.stations["is_source"].to_numpy()
+        assert np.isnan(res.candidate_share_in_deficit[others, c]).all()
+        assert raised.sum() > 3
+
+
+def test_corridor_required_picks_the_lowest_sufficient_grade():
+    # hand-worked: allowed share 0.10; candidates 85.5, 86, 86.5; standard 87
+    aki = np.array([85.0, 85.0, 85.0, 85.5, 86.0, 85.0])
+    share_now = np.array([0.05, 0.5, 0.5, 0.5, 0.5, np.nan])
+    cand = np.array([85.5, 86.0, 86.5])
+    cs = np.array(
+        [
+            [0.0, 0.0, 0.0],
+            [0.3, 0.08, 0.0],  # 86 suffices
+            [0.3, 0.2, 0.15],  # nothing below the standard suffices
+            [np.nan, 0.1, 0.0],  # 86 (share equal to the allowance counts)
+            [np.nan, np.nan, 0.09],  # 86.5
+            [np.nan, np.nan, np.nan],  # exports nothing
+        ]
+    )
+    got = corridor_required(
+        aki, share_now, cand, cs, standard_aki=87.0, step_aki=0.5, allowed_share=0.10
+    )
+    np.testing.assert_array_equal(got[:5], [85.0, 86.0, 87.0, 86.0, 86.5])
+    assert np.isnan(got[5])
+
+
+@pytest.mark.parametrize("mode", ["threads", "dask"])
+def test_every_execution_mode_gives_identical_bits(case, mode):
+    """A real Dask LocalCluster of two worker processes on 127.0.0.1 (or a thread pool)
+    against the same partitions run one after another in this process."""
+    pytest.importorskip("distributed")
+    kw = {"candidate_aki": np.array([86.0]), "sources_per_partition": 9}
+    ref = _run(case, **kw)
+    with make_executor(ExecutionConfig(mode=mode, workers=2)) as ex:
+        got = _run(case, executor=ex, **kw)
+        assert ex.describe()["workers"] == 2
+    pd.testing.assert_frame_equal(ref.stations, got.stations, check_exact=True)
+    pd.testing.assert_frame_equal(ref.edges, got.edges, check_exact=True)
+    np.testing.assert_array_equal(ref.candidate_share_in_deficit, got.candidate_share_in_deficit)
