@@ -232,7 +232,7 @@ class ExecutionConfig(_Frozen):
         131072, ge=1000, description="Road edges per edge-profile partition."
     )
     partition_stations: int = Field(
-        16384, ge=100, description="Stations per DEM-sampling partition."
+        4096, ge=100, description="Stations per partition (DEM sampling, fleet model)."
     )
     partition_tiles: int = Field(
         4, ge=1, description="Zone-grid tiles per justified-zones partition."

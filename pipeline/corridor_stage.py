@@ -7,6 +7,7 @@ calculation is in :mod:`pipeline.roadgraph`, :mod:`pipeline.corridors` and
 
 from __future__ import annotations
 
+import time
 from pathlib import Path
 from typing import Any
 
@@ -192,7 +193,9 @@ def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     if towns is not None and cc.destinations == "towns" and "population" not in towns.columns:
         raise InputFileError(f"{cfg.inputs.towns}: the towns layer needs a 'population' column")
     with io.open_dem(cfg.inputs.dem) as ds:
+        t0 = time.perf_counter()
         graph, source = road_graph_for(cfg, ds, st, towns)
+        timings = {"road_graph": time.perf_counter() - t0}
         ctx.progress("corridors", 0.1)
         spacing_m = profile_spacing_m(graph, ds)
     profiles = partitioned_profiles(
@@ -203,6 +206,7 @@ def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
         edges_per_partition=cfg.execution.partition_edges,
         executor=ctx.executor,
     )
+    timings["edge_profiles"] = time.perf_counter() - t0 - timings["road_graph"]
     ctx.progress("corridors", 0.4)
     sx, sy = terrain.transform_points(st["lon"], st["lat"], "EPSG:4326", graph.crs)
     node, dist, snapped = snap_points(graph, np.column_stack([sx, sy]), cc.snap_distance_m)
@@ -245,6 +249,8 @@ def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
         sources_per_partition=cfg.execution.partition_sources,
         executor=ctx.executor,
     )
+    timings["flows"] = res.summary["total_s"]
+    timings["shortest_path_trees"] = res.summary["dijkstra_s"]
     ctx.progress("corridors", 0.7)
     srow = res.stations.reset_index(drop=True)
     st["road_snap_m"] = np.round(dist, 1)
@@ -266,6 +272,9 @@ def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
         allowed_share=1.0 - cfg.fleet.target_share,
     )
     ctx.counts["corridor_partitions"] = res.summary["partitions"]
+    timings["total"] = time.perf_counter() - t0
+    ctx.part_timings.update({f"corridors/{k}": v for k, v in timings.items()})
+    ctx.log("corridors: " + ", ".join(f"{k} {v:.2f} s" for k, v in timings.items()))
     lines = corridor_lines(graph, res)
     ctx.counts["road_graph"] = {
         k: v for k, v in graph.stats.items() if not isinstance(v, dict | list)

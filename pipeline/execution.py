@@ -20,8 +20,10 @@ Dask Development Team (2016), "Dask: Library for dynamic task scheduling", dask.
 
 from __future__ import annotations
 
+import importlib
 import logging
 import os
+import threading
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -37,8 +39,8 @@ class Executor:
     """Runs ``fn(item, **shared)`` over items and returns the results in item order.
 
     Create with :func:`make_executor`; use as a context manager (a Dask cluster started for
-    the run is shut down on exit). The cluster is started on the first :meth:`map` call, so a
-    run whose stages have nothing to distribute never starts one.
+    the run is shut down on exit). The cluster starts on :meth:`warm_up` (in the background)
+    or on the first :meth:`map` call.
     """
 
     def __init__(self, config: ExecutionConfig, source: Path | None = None):
@@ -48,6 +50,23 @@ class Executor:
         self._client = None
         self._cluster = None
         self._pool: ThreadPoolExecutor | None = None
+        self._starting: threading.Thread | None = None
+        self._start_error: BaseException | None = None
+
+    def warm_up(self) -> None:
+        """Start connecting to (or starting) the Dask cluster in the background, so that its
+        start-up overlaps the run's first stages; :meth:`map` waits for it. No-op otherwise."""
+        if self.mode != "dask" or self._client is not None or self._starting is not None:
+            return
+
+        def connect() -> None:
+            try:
+                self._connect()
+            except BaseException as exc:  # re-raised by map() in the run's thread
+                self._start_error = exc
+
+        self._starting = threading.Thread(target=connect, name="altigrade-dask-start", daemon=True)
+        self._starting.start()
 
     # -------------------------------------------------------------------------------- api
     @property
@@ -77,14 +96,17 @@ class Executor:
         scattered = {
             k: client.scatter([v], broadcast=True, hash=False)[0] for k, v in shared.items()
         }
-        futures = client.map(fn, items, pure=False, **scattered)
+        # the items go to the cluster as data of their own, not inside the task graph
+        item_futures = client.scatter(items, hash=False)
+        futures = client.map(fn, item_futures, pure=False, **scattered)
         try:
             return client.gather(futures)
         finally:
-            for f in [*futures, *scattered.values()]:
+            for f in [*futures, *item_futures, *scattered.values()]:
                 f.release()
 
     def close(self) -> None:
+        self._wait_for_start(raise_error=False)
         if self._pool is not None:
             self._pool.shutdown(wait=True)
             self._pool = None
@@ -118,10 +140,23 @@ class Executor:
             )
         return self._pool
 
+    def _wait_for_start(self, raise_error: bool = True) -> None:
+        if self._starting is not None:
+            self._starting.join()
+            self._starting = None
+        if self._start_error is not None and raise_error:
+            err, self._start_error = self._start_error, None
+            raise err
+
     def _dask_client(self):
-        if self._client is not None:
-            return self._client
+        self._wait_for_start()
+        if self._client is None:
+            self._connect()
+        return self._client
+
+    def _connect(self) -> None:
         try:
+            import dask
             from distributed import Client, LocalCluster
         except ImportError:
             raise ConfigError(
@@ -138,21 +173,38 @@ class Executor:
                     f"{self.config.scheduler!r} within {self.config.connect_timeout_s:g} s "
                     f"({type(exc).__name__})"
                 ) from None
-            return self._client
-        self._cluster = LocalCluster(
-            n_workers=self.config.workers or os.cpu_count() or 1,
-            threads_per_worker=1,
-            processes=True,
-            host="127.0.0.1",
-            dashboard_address=None,
-            silence_logs=logging.ERROR,
-            memory_limit=self.config.worker_memory_limit or "auto",
-        )
+            return
+        # Dask starts workers with MALLOC_TRIM_THRESHOLD_ set, which turns off glibc's
+        # adaptive mmap threshold: every large temporary array is then mapped and unmapped
+        # afresh, and the fleet model's vectorised solvers ran at half speed in a worker
+        # (measured). The thread limits are kept.
+        environ = {
+            k: v
+            for k, v in dask.config.get("distributed.nanny.pre-spawn-environ", {}).items()
+            if k != "MALLOC_TRIM_THRESHOLD_"
+        }
+        # no statistical profiler in the workers: it takes the GIL every few milliseconds
+        settings = {
+            "distributed.nanny.pre-spawn-environ": environ,
+            "distributed.worker.profile.enabled": False,
+        }
+        with dask.config.set(settings):
+            self._cluster = LocalCluster(
+                n_workers=self.config.workers or os.cpu_count() or 1,
+                threads_per_worker=1,
+                processes=True,
+                host="127.0.0.1",
+                dashboard_address=None,
+                silence_logs=logging.ERROR,
+                memory_limit=self.config.worker_memory_limit or "auto",
+            )
         self._client = Client(self._cluster, timeout=timeout)
-        return self._client
+        # import the pipeline in every worker now (seconds each), not inside the first task
+        self._client.run(importlib.import_module, "pipeline.stages")
 
 
 def make_executor(config: ExecutionConfig, source: Path | None = None) -> Executor:
-    """The executor of a run's ``[execution]`` table (nothing is started until used);
-    ``source`` is the config file named in error messages."""
+    """The executor of a run's ``[execution]`` table (nothing is started until
+    :meth:`Executor.warm_up` or the first :meth:`Executor.map`); ``source`` is the config file
+    named in error messages."""
     return Executor(config, source)

@@ -19,7 +19,6 @@ from pipeline.webmap import (
     MapLayer,
     MapSpec,
     RampStyle,
-    build_map_html,
 )
 
 __all__ = [
@@ -441,9 +440,12 @@ def _station_layer(stations, style, popup, name="Stations") -> MapLayer:
     )
 
 
-def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected) -> dict[str, str]:
+def audience_maps(
+    ctx, up: dict[str, dict[str, Any]], stations, zones, rejected
+) -> dict[str, MapSpec]:
     """The three maps: ``map.html`` (regulators), ``map_distributor.html``,
-    ``map_public.html``; one builder, one look, cautions on each."""
+    ``map_public.html``, as specs for :func:`pipeline.webmap.build_map_html` (one builder,
+    one look, cautions on each); the caller renders them, in parallel where it can."""
     cfg = ctx.config
     roads, towns, fleet_zones = _read_optional(cfg)
     corridors = up.get("corridors", {}).get("corridors")
@@ -455,7 +457,7 @@ def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected)
     plans = up.get("plans", {})
     basemap = basemap_of(up.get("terrain", {}))
     note = f"Run date {ctx.today.isoformat()} · altigrade"
-    maps: dict[str, str] = {}
+    maps: dict[str, MapSpec] = {}
 
     # regulators
     reg = station_map_spec(
@@ -516,15 +518,13 @@ def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected)
                 point_radius_px=8,
             ),
         )
-    maps["map.html"] = build_map_html(
-        MapSpec(
-            title=reg.title,
-            subtitle=reg.subtitle,
-            layers=layers,
-            cautions=CAUTIONS,
-            basemap=basemap,
-            generated_note=note,
-        )
+    maps["map.html"] = MapSpec(
+        title=reg.title,
+        subtitle=reg.subtitle,
+        layers=layers,
+        cautions=CAUTIONS,
+        basemap=basemap,
+        generated_note=note,
     )
 
     # distributors
@@ -552,15 +552,13 @@ def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected)
         if cl is not None:
             dl.append(cl)
         dl.append(_station_layer(st, CHANGE_STYLE, PLAN_POPUP))
-        maps["map_distributor.html"] = build_map_html(
-            MapSpec(
-                title=f"Grade-supply plan — {cfg.name}",
-                subtitle="Which stations need which regular grade, why, and what it costs",
-                layers=dl,
-                cautions=CAUTIONS,
-                basemap=basemap,
-                generated_note=note,
-            )
+        maps["map_distributor.html"] = MapSpec(
+            title=f"Grade-supply plan — {cfg.name}",
+            subtitle="Which stations need which regular grade, why, and what it costs",
+            layers=dl,
+            cautions=CAUTIONS,
+            basemap=basemap,
+            generated_note=note,
         )
 
     # public
@@ -582,15 +580,13 @@ def audience_maps(ctx, up: dict[str, dict[str, Any]], stations, zones, rejected)
     if towns is not None and len(towns):
         pl.append(town_layer(towns, visible=True))
     pl.append(_station_layer(pub, GRADE_STYLE, PUBLIC_POPUP, name="Fuel stations"))
-    maps["map_public.html"] = build_map_html(
-        MapSpec(
-            title=f"Gasoline grades at altitude — {cfg.name}",
-            subtitle="What regular is sold where, which vehicles it suits, and what to do when "
-            "driving down",
-            layers=pl,
-            cautions=CAUTIONS,
-            basemap=basemap,
-            generated_note=note,
-        )
+    maps["map_public.html"] = MapSpec(
+        title=f"Gasoline grades at altitude — {cfg.name}",
+        subtitle="What regular is sold where, which vehicles it suits, and what to do when "
+        "driving down",
+        layers=pl,
+        cautions=CAUTIONS,
+        basemap=basemap,
+        generated_note=note,
     )
     return maps

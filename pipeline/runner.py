@@ -77,6 +77,8 @@ class StageContext:
     inputs_sha256: dict[str, str] = field(default_factory=dict)
     #: Runs a stage's partitions (:class:`pipeline.execution.Executor`); None: in this process.
     executor: Any = None
+    #: Timings of a stage's parts [s] ("stage/part"), reported beside the stage timings.
+    part_timings: dict[str, float] = field(default_factory=dict)
 
 
 @dataclass
@@ -175,6 +177,7 @@ def run_stages(
     timings: dict[str, float] = {}
     reused: list[str] = []
     counts: dict[str, Any] = {}
+    part_timings: dict[str, float] = {}
     input_hashes: dict[str, str] = {}
     for p in sorted(cache_root.glob("*/.tmp-*")) if cache_root.exists() else []:
         p.unlink(missing_ok=True)
@@ -198,7 +201,16 @@ def run_stages(
         stage_dir = cache_root / stage.name
         key_file = stage_dir / "key.json"
         ctx = StageContext(
-            config, out_dir, today, progress, log, stage_dir, counts, input_hashes, executor
+            config,
+            out_dir,
+            today,
+            progress,
+            log,
+            stage_dir,
+            counts,
+            input_hashes,
+            executor,
+            part_timings,
         )
         if stage.cacheable and config.execution.reuse_unchanged_stages and key_file.exists():
             try:
@@ -245,7 +257,7 @@ def run_stages(
         "inputs_sha256": input_hashes,
         "stage_keys": keys,
         "stages_reused": reused,
-        "timings_s": {k: round(v, 3) for k, v in timings.items()},
+        "timings_s": {k: round(v, 3) for k, v in {**timings, **part_timings}.items()},
         "counts": counts,
         "execution": executor.describe() if executor is not None else {"mode": "local"},
         "package_versions": _package_versions(),

@@ -245,6 +245,34 @@ def _read_fleet_zones(cfg: RunConfig) -> gpd.GeoDataFrame | None:
     return zones
 
 
+def _fleet_part(item, *, params, design) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """The fleet model for one partition of stations (rows ``idx``)."""
+    from pipeline import requirement as rq
+
+    idx, mix, z, grades = item
+    cond = rq.design_conditions(z, design, params.reference)
+    ja = rq.justified_aki(mix, params, cond)
+    band = rq.justified_aki_band(mix, params, cond)
+    out = {
+        "justified_aki": np.asarray(ja.posted_aki, dtype=float),
+        "justified_aki_unrounded": np.round(np.asarray(ja.aki, dtype=float), 2),
+        "justified_aki_p05": np.round(np.asarray(band.low_aki, dtype=float), 2),
+        "justified_aki_p50": np.round(np.asarray(band.median_aki, dtype=float), 2),
+        "justified_aki_p95": np.round(np.asarray(band.high_aki, dtype=float), 2),
+    }
+    for grade, g in grades.items():
+        share = rq.share_satisfied(g, mix, params, cond)
+        out[f"{grade}_share_satisfied_pct"] = np.round(100 * np.asarray(share, dtype=float), 1)
+        be = rq.break_even_elevation(g, mix, params, design=design)
+        out[f"{grade}_break_even_elevation_m"] = np.round(
+            np.asarray(be.elevation_m, dtype=float), 0
+        )
+        out[f"{grade}_break_even_status"] = np.where(
+            np.isnan(g), "not_sold", np.asarray(be.status)
+        ).astype(object)
+    return idx, out
+
+
 def _fleet(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     """Adds the fleet mix (``fleet_zone``, ``fleet_share_<class>``), ``justified_aki`` (posted,
     rounded up), ``justified_aki_unrounded``, ``justified_aki_p05/p50/p95`` (coefficient
@@ -279,23 +307,32 @@ def _fleet(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     for k, cname in enumerate(names):
         st[f"fleet_share_{cname}"] = np.round(mix[:, k], 4)
     z = st["elevation_m"].to_numpy(float)
-    cond = rq.design_conditions(z, cfg.design_day, params.reference)
-    ja = rq.justified_aki(mix, params, cond)
-    band = rq.justified_aki_band(mix, params, cond)
-    st["justified_aki"] = np.asarray(ja.posted_aki, dtype=float)
-    st["justified_aki_unrounded"] = np.round(np.asarray(ja.aki, dtype=float), 2)
-    st["justified_aki_p05"] = np.round(np.asarray(band.low_aki, dtype=float), 2)
-    st["justified_aki_p50"] = np.round(np.asarray(band.median_aki, dtype=float), 2)
-    st["justified_aki_p95"] = np.round(np.asarray(band.high_aki, dtype=float), 2)
-    for grade, col in GRADES:
-        if col not in st.columns:
-            continue
-        g = st[col].to_numpy(float)
-        share = rq.share_satisfied(g, mix, params, cond)
-        st[f"{grade}_share_satisfied_pct"] = np.round(100 * np.asarray(share, dtype=float), 1)
-        be = rq.break_even_elevation(g, mix, params, design=cfg.design_day)
-        st[f"{grade}_break_even_elevation_m"] = np.round(np.asarray(be.elevation_m, dtype=float), 0)
-        st[f"{grade}_break_even_status"] = np.where(np.isnan(g), "not_sold", np.asarray(be.status))
+    grades = {grade: st[col].to_numpy(float) for grade, col in GRADES if col in st.columns}
+    # stations in spatial partitions; every number below depends on its own station alone
+    # (the Monte Carlo band draws its coefficients from a fixed seed, the same in each piece)
+    key = morton_key(np.column_stack([st["lon"].to_numpy(float), st["lat"].to_numpy(float)]))
+    order = np.argsort(key, kind="stable")
+    items = []
+    for sl in partition_slices(n, cfg.execution.partition_stations):
+        idx = np.sort(order[sl])
+        items.append((idx, mix[idx], z[idx], {g: v[idx] for g, v in grades.items()}))
+    cols: dict[str, np.ndarray] = {}
+    for idx, part in _map(ctx, _fleet_part, items, {"params": params, "design": cfg.design_day}):
+        for name, values in part.items():
+            if name not in cols:
+                cols[name] = np.empty(n, dtype=values.dtype)
+            cols[name][idx] = values
+    for name in (
+        "justified_aki",
+        "justified_aki_unrounded",
+        "justified_aki_p05",
+        "justified_aki_p50",
+        "justified_aki_p95",
+    ):
+        st[name] = cols[name] if n else np.zeros(0)
+    for grade in grades:
+        for suffix in ("share_satisfied_pct", "break_even_elevation_m", "break_even_status"):
+            st[f"{grade}_{suffix}"] = cols[f"{grade}_{suffix}"] if n else np.zeros(0)
     ctx.counts["justified_aki_counts"] = {
         f"{k:g}": int(v) for k, v in st["justified_aki"].value_counts().sort_index().items()
     }
@@ -490,9 +527,17 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         )
         texts[f"{name}.csv"] = io.csv_text(frame)
     from pipeline.maps import audience_maps
+    from pipeline.report import build_report_html
+    from pipeline.webmap import build_map_html
 
-    texts.update(audience_maps(ctx, up, stations, zones, rejected))
-    texts["report.html"] = _report_html(ctx, up, stations, rejected)
+    # the documents are independent: render them as separate pieces
+    docs = [
+        (name, build_map_html, {"spec": spec})
+        for name, spec in audience_maps(ctx, up, stations, zones, rejected).items()
+    ]
+    docs.append(("report.html", build_report_html, _report_kwargs(ctx, up, stations, rejected)))
+    rendered = _map(ctx, _render, [(fn, kw) for _, fn, kw in docs], {})
+    texts.update(zip([name for name, _, _ in docs], rendered, strict=True))
     io.write_gpkg_layers(out / "altigrade.gpkg", layers, crs)
     for fname, text in texts.items():
         io.write_text_atomic(out / fname, text)
@@ -501,8 +546,14 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     return {"stations": stations, "rejected_stations": rejected}
 
 
-def _report_html(ctx: StageContext, up: dict[str, dict[str, Any]], stations, rejected) -> str:
-    from pipeline.report import build_report_html, decision_sections
+def _render(item: tuple[Callable[..., str], dict[str, Any]]) -> str:
+    fn, kwargs = item
+    return fn(**kwargs)
+
+
+def _report_kwargs(ctx: StageContext, up: dict[str, dict[str, Any]], stations, rejected) -> dict:
+    """The arguments of :func:`pipeline.report.build_report_html` for this run."""
+    from pipeline.report import decision_sections
 
     cfg = ctx.config
     manifest = {"config": cfg.model_dump(mode="json"), "inputs_sha256": dict(ctx.inputs_sha256)}
@@ -511,7 +562,7 @@ def _report_html(ctx: StageContext, up: dict[str, dict[str, Any]], stations, rej
         corridors=up.get("corridors", {}).get("corridors"),
         plans=up.get("plans", {}),
     )
-    return build_report_html(
+    return dict(
         extra_sections=extra,
         title=f"altigrade report — {cfg.name}",
         stations=pd.DataFrame(stations.drop(columns=stations.geometry.name)),
@@ -689,6 +740,7 @@ def run(
     _check_inputs_not_in(out, config)
     today = today or run_date()
     with make_executor(config.execution, config.source) as executor:
+        executor.warm_up()
         result = run_stages(
             [*STAGES, _publish_stage()],
             config,
