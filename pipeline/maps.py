@@ -114,8 +114,9 @@ def busiest(
     return gdf.iloc[keep], total
 
 
-def _shown(name: str, gdf: gpd.GeoDataFrame, total: int, what: str) -> str:
-    return name if len(gdf) >= total else f"{name} ({what} {len(gdf):,} of {total:,})"
+def _shown(name: str, short: str, gdf: gpd.GeoDataFrame, total: int, what: str) -> str:
+    """The layer label: ``name``, or ``short`` with how many of how many it shows."""
+    return name if len(gdf) >= total else f"{short} ({what} {len(gdf):,} of {total:,})"
 
 
 def road_layer(roads: gpd.GeoDataFrame, total: int | None = None) -> MapLayer:
@@ -137,7 +138,7 @@ def road_layer(roads: gpd.GeoDataFrame, total: int | None = None) -> MapLayer:
             column="road_kind", colors={"road": "#6b6b6b"}, labels={"road": "Road"}
         )
     return MapLayer(
-        name=_shown("Roads", roads, total or len(roads), "busiest"),
+        name=_shown("Roads", "Roads", roads, total or len(roads), "busiest"),
         gdf=roads,
         style=style,
         popup_fields=_present(roads, (("road_class", "Class"), ("aadt", "Traffic [veh/day]"))),
@@ -160,7 +161,9 @@ def corridor_layer(corridors: gpd.GeoDataFrame, total: int | None = None) -> Map
         RISK_COLORS[-(len(breaks) + 1) :] if len(breaks) + 1 <= len(RISK_COLORS) else RISK_COLORS
     )
     return MapLayer(
-        name=_shown("Descent corridors (risk)", corridors, total or len(corridors), "riskiest"),
+        name=_shown(
+            "Descent corridors (risk)", "Corridors", corridors, total or len(corridors), "riskiest"
+        ),
         gdf=corridors,
         style=RampStyle(
             column="risk_l_aki_per_month",

@@ -45,5 +45,5 @@ def test_thinned_layers_say_how_many_they_show():
     assert road_layer(kept, total).name == "Roads (busiest 20 of 50)"
     c = lines({"risk_l_aki_per_month": np.arange(30.0), "flow_l_per_month": np.ones(30)})
     kc, tc = busiest(c, 10, ("risk_l_aki_per_month", "flow_l_per_month"))
-    assert corridor_layer(kc, tc).name == "Descent corridors (risk) (riskiest 10 of 30)"
+    assert corridor_layer(kc, tc).name == "Corridors (riskiest 10 of 30)"
     assert kc["risk_l_aki_per_month"].min() == 20.0
