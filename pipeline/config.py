@@ -229,10 +229,10 @@ class ExecutionConfig(_Frozen):
         description="Corridor sources per partition (sources are ordered spatially first).",
     )
     partition_edges: int = Field(
-        131072, ge=1000, description="Road edges per edge-profile partition."
+        131072, ge=1, description="Road edges per edge-profile partition."
     )
     partition_stations: int = Field(
-        4096, ge=100, description="Stations per partition (DEM sampling, fleet model)."
+        4096, ge=1, description="Stations per partition (DEM sampling, fleet model)."
     )
     partition_tiles: int = Field(
         4, ge=1, description="Zone-grid tiles per justified-zones partition."

@@ -176,6 +176,7 @@ def partitioned_profiles(
     out.index = pd.RangeIndex(m, name="edge")
     out.attrs.update(results[0].attrs)
     out.attrs["blocks_read"] = int(sum(r.attrs.get("blocks_read", 0) for r in results))
+    out.attrs["partitions"] = len(parts)
     return out
 
 
@@ -207,6 +208,7 @@ def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
         executor=ctx.executor,
     )
     timings["edge_profiles"] = time.perf_counter() - t0 - timings["road_graph"]
+    ctx.counts["edge_profile_partitions"] = int(profiles.attrs.get("partitions", 1))
     ctx.progress("corridors", 0.4)
     sx, sy = terrain.transform_points(st["lon"], st["lat"], "EPSG:4326", graph.crs)
     node, dist, snapped = snap_points(graph, np.column_stack([sx, sy]), cc.snap_distance_m)

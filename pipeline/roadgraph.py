@@ -1063,13 +1063,17 @@ def _length_quantiles(
         return out
     order = np.lexsort((value[sel], seg_edge[sel]))
     se, sv, sl = seg_edge[sel][order], value[sel][order], seg_len[sel][order]
-    cum = np.cumsum(sl)
-    tot = np.bincount(se, weights=sl, minlength=n_edges)
-    start = np.r_[0.0, np.cumsum(tot)[:-1]]
-    has = tot > 0
+    # Cumulative length within each edge, summed from the edge's own start (a running sum over
+    # all edges would round each edge's sums by what precedes it, and a quantile that falls on
+    # a segment boundary could then depend on the other edges profiled with it).
+    cum = pd.Series(sl).groupby(se, sort=False).cumsum().to_numpy()
+    last = np.r_[se[1:] != se[:-1], True]
+    tot = np.zeros(n_edges)
+    tot[se[last]] = cum[last]
     for o, f in zip(out, fractions, strict=True):
-        pos = np.searchsorted(cum, start[has] + f * tot[has], side="left")
-        o[has] = sv[np.minimum(pos, sv.size - 1)]
+        hit = np.flatnonzero(cum >= f * tot[se])
+        edges, first = np.unique(se[hit], return_index=True)
+        o[edges] = sv[hit[first]]
     return out
 
 

@@ -41,7 +41,6 @@ class TreeWork:
         self.pred_entry = np.full(n_nodes, -1, dtype=np.int64)
         self.order = np.zeros(n_nodes, dtype=np.int64)
         self.flow = np.zeros(n_nodes)
-        self.settled = np.zeros(n_nodes, dtype=np.bool_)
         self.touched = np.zeros(n_nodes, dtype=np.int64)
         self.no_targets = np.zeros(n_nodes, dtype=np.bool_)
         self.heap_d = np.zeros(n_entries + 1)
@@ -58,21 +57,19 @@ class TreeWork:
             self.pred_node,
             self.pred_entry,
             self.flow,
-            self.settled,
         )
         self.size = 0
         self.n_touched = 0
 
 
 @njit(cache=True, nogil=True)
-def _reset(touched, k, dist, pred_node, pred_entry, flow, settled):
+def _reset(touched, k, dist, pred_node, pred_entry, flow):
     for i in range(k):
         x = touched[i]
         dist[x] = np.inf
         pred_node[x] = -1
         pred_entry[x] = -1
         flow[x] = 0.0
-        settled[x] = False
 
 
 @njit(cache=True, nogil=True)
@@ -93,7 +90,6 @@ def _dijkstra(
     pred_node,
     pred_entry,
     order,
-    settled,
     touched,
     heap_d,
     heap_v,
@@ -131,9 +127,8 @@ def _dijkstra(
                     break
             heap_d[i] = ld
             heap_v[i] = lv
-        if settled[x] or d > dist[x]:
-            continue  # a stale heap entry
-        settled[x] = True
+        if d > dist[x]:
+            continue  # a stale heap entry (a node is pushed again only when strictly closer)
         order[k] = x
         k += 1
         if target[x]:
@@ -142,9 +137,7 @@ def _dijkstra(
                 break  # every target is settled: the paths to them are final
         for e in range(indptr[x], indptr[x + 1]):
             y = indices[e]
-            if settled[y]:
-                continue
-            nd = d + length[e]
+            nd = d + length[e]  # a settled y has dist[y] <= d <= nd: never updated below
             if nd > limit or nd >= dist[y]:
                 continue
             if dist[y] == np.inf:
@@ -230,7 +223,6 @@ def bounded_tree(
         work.pred_node,
         work.pred_entry,
         work.order,
-        work.settled,
         work.touched,
         work.heap_d,
         work.heap_v,

@@ -168,6 +168,7 @@ def sample_stations(ctx: StageContext, dem: Path, x: np.ndarray, y: np.ndarray):
     value = np.full(n, np.nan)
     status = np.empty(n, dtype=object)
     blocks = 0
+    ctx.counts["station_sampling_partitions"] = len(items)
     for idx, v, stt, b in _map(ctx, _sample_part, items, {"dem": dem}):
         value[idx] = v
         status[idx] = stt
@@ -316,6 +317,7 @@ def _fleet(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     for sl in partition_slices(n, cfg.execution.partition_stations):
         idx = np.sort(order[sl])
         items.append((idx, mix[idx], z[idx], {g: v[idx] for g, v in grades.items()}))
+    ctx.counts["fleet_partitions"] = len(items)
     cols: dict[str, np.ndarray] = {}
     for idx, part in _map(ctx, _fleet_part, items, {"params": params, "design": cfg.design_day}):
         for name, values in part.items():
@@ -368,6 +370,7 @@ def _zones(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
         tiles = zone_tiles(ds, cfg.zones.resolution_m, cfg.zones.tile_cells)
     parts = [tiles[sl] for sl in partition_slices(len(tiles), cfg.execution.partition_tiles)]
     shared = {"dem": cfg.inputs.dem, "fleet_zones": _read_fleet_zones(cfg), "options": options}
+    ctx.counts["zone_partitions"] = len(parts)
     results = [r for part in _map(ctx, _zone_part, parts, shared) for r in part]
     ctx.progress("zones", 0.9)
     with io.open_dem(cfg.inputs.dem) as ds:

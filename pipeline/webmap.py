@@ -427,8 +427,8 @@ body.ag-body { display: flex; flex-direction: row; height: 100vh; overflow: hidd
 .ag-tip { display: inline-block; max-width: 260px; overflow: hidden; text-overflow: ellipsis;
   white-space: nowrap; vertical-align: bottom; }
 .leaflet-control-layers-expanded { font-size: 13px; padding: 6px 10px 6px 8px; }
-.leaflet-control-layers label > span > span { display: inline-block; max-width: 260px; overflow: hidden;
-  text-overflow: ellipsis; white-space: nowrap; vertical-align: bottom; }
+.leaflet-control-layers label > span > span { display: inline-block; max-width: 260px;
+  overflow: hidden; text-overflow: ellipsis; white-space: nowrap; vertical-align: bottom; }
 .leaflet-control-scale-line { font-size: 11px; }
 @media (max-width: 700px) {
   body.ag-body { flex-direction: column; }
