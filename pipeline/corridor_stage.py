@@ -22,7 +22,7 @@ from pipeline import requirement as rq
 from pipeline.config import RunConfig
 from pipeline.corridors import compute_corridors, corridor_lines
 from pipeline.errors import InputFileError
-from pipeline.partitions import morton_key, partition_slices
+from pipeline.partitions import spatial_partitions
 from pipeline.roadgraph import (
     build_road_graph,
     edge_profiles,
@@ -156,8 +156,7 @@ def partitioned_profiles(
     mid = shapely.get_coordinates(
         shapely.line_interpolate_point(graph.geometry, 0.5, normalized=True)
     )
-    order = np.argsort(morton_key(mid), kind="stable")
-    parts = [np.sort(order[sl]) for sl in partition_slices(m, edges_per_partition)]
+    parts = spatial_partitions(mid, edges_per_partition)
     shared = {
         "geometry": graph.geometry,
         "length_m": np.asarray(graph.length_m, dtype=float),

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["morton_key", "partition_slices"]
+__all__ = ["morton_key", "partition_slices", "spatial_partitions"]
 
 
 def partition_slices(n: int, size: int) -> list[slice]:
@@ -41,3 +41,16 @@ def morton_key(xy: np.ndarray) -> np.ndarray:
         return (v | (v << np.uint64(1))) & np.uint64(0x55555555)
 
     return spread(q[:, 0]) | (spread(q[:, 1]) << np.uint64(1))
+
+
+def spatial_partitions(xy: np.ndarray, size: int) -> list[np.ndarray]:
+    """Row numbers of ``xy`` in partitions of at most ``size`` rows along a Morton curve (rows
+    with a non-finite coordinate come last); each partition's rows ascending. One empty
+    partition when there are no rows."""
+    xy = np.asarray(xy, dtype=float).reshape(-1, 2)
+    n = xy.shape[0]
+    ok = np.isfinite(xy).all(axis=1)
+    key = np.full(n, np.iinfo(np.uint64).max, dtype=np.uint64)
+    key[ok] = morton_key(xy[ok])
+    order = np.argsort(key, kind="stable")
+    return [np.sort(order[sl]) for sl in partition_slices(n, size)] or [np.zeros(0, np.int64)]

@@ -23,7 +23,7 @@ from pipeline.corridor_stage import corridors_stage
 from pipeline.errors import InputFileError
 from pipeline.execution import make_executor
 from pipeline.ingest import validate_stations
-from pipeline.partitions import morton_key, partition_slices
+from pipeline.partitions import partition_slices, spatial_partitions
 from pipeline.plan_stage import plans_stage
 from pipeline.runner import RunResult, Stage, StageContext, run_stages
 
@@ -156,15 +156,8 @@ def sample_stations(ctx: StageContext, dem: Path, x: np.ndarray, y: np.ndarray):
     it runs. A point's value and status depend on that point and the DEM alone, so the
     result equals the one-piece call to the bit; ``blocks_read`` adds up the partitions'."""
     n = x.size
-    ok = np.isfinite(x) & np.isfinite(y)
-    key = np.full(n, np.iinfo(np.uint64).max, dtype=np.uint64)
-    key[ok] = morton_key(np.column_stack([x[ok], y[ok]]))
-    order = np.argsort(key, kind="stable")
-    size = ctx.config.execution.partition_stations
-    items = []
-    for sl in partition_slices(n, size) or [slice(0, 0)]:
-        idx = np.sort(order[sl])
-        items.append((idx, x[idx], y[idx]))
+    parts = spatial_partitions(np.column_stack([x, y]), ctx.config.execution.partition_stations)
+    items = [(idx, x[idx], y[idx]) for idx in parts]
     value = np.full(n, np.nan)
     status = np.empty(n, dtype=object)
     blocks = 0
@@ -311,12 +304,11 @@ def _fleet(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     grades = {grade: st[col].to_numpy(float) for grade, col in GRADES if col in st.columns}
     # stations in spatial partitions; every number below depends on its own station alone
     # (the Monte Carlo band draws its coefficients from a fixed seed, the same in each piece)
-    key = morton_key(np.column_stack([st["lon"].to_numpy(float), st["lat"].to_numpy(float)]))
-    order = np.argsort(key, kind="stable")
-    items = []
-    for sl in partition_slices(n, cfg.execution.partition_stations):
-        idx = np.sort(order[sl])
-        items.append((idx, mix[idx], z[idx], {g: v[idx] for g, v in grades.items()}))
+    lonlat = np.column_stack([st["lon"].to_numpy(float), st["lat"].to_numpy(float)])
+    items = [
+        (idx, mix[idx], z[idx], {g: v[idx] for g, v in grades.items()})
+        for idx in spatial_partitions(lonlat, cfg.execution.partition_stations)
+    ]
     ctx.counts["fleet_partitions"] = len(items)
     cols: dict[str, np.ndarray] = {}
     for idx, part in _map(ctx, _fleet_part, items, {"params": params, "design": cfg.design_day}):
