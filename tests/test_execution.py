@@ -57,6 +57,9 @@ def test_every_layer_and_table_identical_to_the_single_process_run(runs, mode):
     assert "stations.csv" in names and "supply_plan.csv" in names
     for name in names:
         assert (got / name).read_bytes() == (ref / name).read_bytes(), name
+    # the maps too (the report echoes the config, [execution] included, so it may differ there)
+    for name in ("map.html", "map_distributor.html", "map_public.html"):
+        assert (got / name).read_bytes() == (ref / name).read_bytes(), name
 
 
 def test_the_work_really_was_partitioned_and_distributed(runs):
