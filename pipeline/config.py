@@ -224,13 +224,13 @@ class ExecutionConfig(_Frozen):
         description="Memory limit per local Dask worker (e.g. '4GB'); default: Dask's 'auto'.",
     )
     partition_sources: int = Field(
-        64,
+        256,
         ge=1,
-        description="Corridor sources per partition (sources are ordered spatially first).",
+        description="Corridor sources per partition (sources are ordered spatially first). "
+        "With trees rooted at the destinations each partition grows one tree per destination "
+        "within reach, so fewer, larger partitions mean fewer trees.",
     )
-    partition_edges: int = Field(
-        131072, ge=1, description="Road edges per edge-profile partition."
-    )
+    partition_edges: int = Field(131072, ge=1, description="Road edges per edge-profile partition.")
     partition_stations: int = Field(
         4096, ge=1, description="Stations per partition (DEM sampling, fleet model)."
     )

@@ -50,6 +50,19 @@ Method, per source station s (regular AKI below ``sea_level_standard_aki``, volu
    so a station's risk is comparable across networks whatever their edge lengths. It is a
    ranking index for inspections, not a count of knocking engines.
 
+Trees rooted at the destinations (``tree_root``)
+-----------------------------------------------
+Where destinations are fewer than sources (towns against stations) and the tank grade does
+not change along the way (ρ = 0), the same sums come from one tree per destination node,
+grown on the reverse graph: it holds every source's shortest path to that destination. The
+fuel of source s on the entry x → parent(x) has driven a = D(s) − D(x) (D: road distance to
+the destination), so its volume-distance q ℓ (1 − ℓ/2R + D(x)/R − D(s)/R) is linear in D(s):
+per entry, subtree sums of q and q·D(s) per tank grade give flows, volume-distance, deficit
+and risk; per source, prefix sums from the destination down give its sums over its path
+(:func:`pipeline.shortest_paths.root_tree_sums`). Equal to the source trees up to rounding
+where shortest paths are unique; between equally short paths each pair takes one chosen from
+the destination's side. ``sources_count`` counts distinct sources per entry (bit sets).
+
 Per station: ``export_risk_l_aki_per_month`` = Σ risk over its tree;
 ``fuel_share_in_deficit`` = Σ VD·φ / Σ VD over its tree, φ = the share of the edge's length
 (its elevation bins) where D > 0 — the share of its exported fuel's volume-distance that is
@@ -84,7 +97,13 @@ from scipy import sparse
 from pipeline.errors import AltigradeError
 from pipeline.partitions import morton_key, partition_slices
 from pipeline.roadgraph import PROFILE_QUANTILE_COLUMNS, RoadGraph
-from pipeline.shortest_paths import TreeWork, bounded_tree, tree_flows
+from pipeline.shortest_paths import (
+    TreeWork,
+    bounded_tree,
+    reverse_csr,
+    root_tree_sums,
+    tree_flows,
+)
 
 try:  # the project's own blending function; a local linear blend otherwise
     from pipeline.octane import blend_linear as _blend_linear
@@ -339,8 +358,9 @@ def compute_corridors(
     *,
     local_aki: float | np.ndarray | None = None,
     candidate_aki: ArrayLike | None = None,
-    sources_per_partition: int = 64,
+    sources_per_partition: int = 256,
     executor: Any = None,
+    tree_root: Literal["auto", "sources", "destinations"] = "auto",
 ) -> CorridorResult:
     """Flows of sub-standard fuel from stations over the road graph, and the risk they carry.
 
@@ -378,6 +398,13 @@ def compute_corridors(
         Runs the partitions (in this process when None). The partitions and the order in
         which their edge sums are combined depend on the data alone, so the result is
         identical to the bit whichever executor runs them.
+    tree_root : {"auto", "sources", "destinations"}
+        Where the shortest-path trees grow from: one tree per source (any model), or one per
+        destination node on the reverse graph (``refill_dilution`` = 0 only: the tank grade
+        must not change along the way). ``"auto"`` roots them at the destinations when those
+        are fewer than the sources and dilution is off. Both give the same sums up to
+        rounding where shortest paths are unique; ``nodes_reached`` is 0 with destination
+        roots.
 
     Returns
     -------
@@ -494,6 +521,17 @@ def compute_corridors(
             if key in groups.index:
                 excl[int(i)] = np.asarray(groups.loc[key], dtype=np.int64)
 
+    # Which end the trees grow from: the fewer trees, where the model allows it.
+    n_src = int((status == "source").sum())
+    n_roots = int(np.unique(d_node).size)
+    if tree_root == "destinations" and params.refill_dilution > 0:
+        raise CorridorError(
+            "tree_root='destinations' needs refill_dilution = 0 (the tank grade then does not "
+            "change along the way)"
+        )
+    if tree_root == "auto":
+        tree_root = "destinations" if params.refill_dilution == 0 and n_roots < n_src else "sources"
+
     # Partitions of the sources, ordered along a Morton curve of their nodes.
     src_rows = np.flatnonzero(status == "source")
     src_rows = src_rows[np.argsort(morton_key(graph.node_xy[s_node[src_rows]]), kind="stable")]
@@ -510,6 +548,7 @@ def compute_corridors(
         d_weight=d_w,
         candidate_aki=cand,
         params=params,
+        root=tree_root,
     )
     parts = []
     for sl in partition_slices(src_rows.size, sources_per_partition):
@@ -622,6 +661,7 @@ def compute_corridors(
         "unrouted_l_per_month": float(unrouted.sum()),
         "export_risk_l_aki_per_month": float(export_risk.sum()),
         "partitions": len(parts),
+        "tree_root": tree_root,
         "subgraph_nodes_max": int(max(sub_nodes, default=0)),
         "subgraph_nodes_mean": float(np.mean(sub_nodes)) if sub_nodes else 0.0,
         "dijkstra_s": t_dij,
@@ -669,6 +709,8 @@ class _Network:
     d_weight: np.ndarray
     candidate_aki: np.ndarray
     params: CorridorParams
+    #: "sources": one tree per source; "destinations": one tree per destination node.
+    root: str = "sources"
 
 
 @dataclass(frozen=True, eq=False)
@@ -718,6 +760,175 @@ def _cut(net: _Network, node: np.ndarray) -> tuple[Any, np.ndarray, np.ndarray, 
 
 
 def _corridor_partition(part: _SourceBatch, net: _Network) -> dict[str, Any]:
+    """One partition of sources, by trees rooted where ``net.root`` says."""
+    if net.root == "destinations":
+        return _partition_by_destination(part, net)
+    return _partition_by_source(part, net)
+
+
+def _gravity(
+    part: _SourceBatch, net: _Network, dd: np.ndarray, j: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+    """Step 2 for source j of the partition: its share q [L/month] to every destination, given
+    the road distances ``dd`` [m] (inf where not reached within R). Returns (q, reached, far)
+    or None when no destination attracts anything."""
+    params = net.params
+    r_m = params.tank_range_km * _M_PER_KM
+    w = net.d_weight
+    if part.exclude[j] is not None:
+        w = w.copy()
+        w[part.exclude[j]] = 0.0
+    fin = np.isfinite(dd)
+    live = w > 0
+    reach = fin & live
+    far = ~fin & live & (net.component[net.d_node] == net.component[part.node[j]])
+    f = np.zeros(dd.size)
+    f[reach] = decay_weight(dd[reach] / _M_PER_KM, params)
+    if far.any():
+        eu = np.hypot(*(net.node_xy[net.d_node[far]] - net.node_xy[part.node[j]]).T)
+        f[far] = decay_weight(np.maximum(eu, r_m) / _M_PER_KM, params)
+    g = w * f
+    tot = g.sum()
+    if not tot > 0:
+        return None
+    return part.volume_l[j] * (g / tot), reach, far
+
+
+def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, Any]:
+    """The same sums as :func:`_partition_by_source` from one tree per destination node,
+    grown on the reverse graph towards it: where destinations are fewer than sources (towns
+    against stations) far fewer trees. Needs a tank grade that does not change along the way
+    (``refill_dilution`` = 0): volume-distance and deficit then add up per grade
+    (:func:`pipeline.shortest_paths.root_tree_sums`). Equal to the source-rooted sums up to
+    rounding where shortest paths are unique; where several are equally short, each pair is
+    routed on one of them, chosen from the destination's side."""
+    params = net.params
+    r_m = params.tank_range_km * _M_PER_KM
+    adj, nodes, ents, _ = _cut(net, part.node)
+    k_all = nodes.size
+    nnz = ents.size
+    local = np.full(net.node_xy.shape[0], -1, dtype=np.int64)
+    local[nodes] = np.arange(k_all)
+    src_local = local[part.node]
+    cand = net.candidate_aki
+    m = part.rows.size
+    out: dict[str, Any] = {
+        "routed": np.zeros(m, dtype=bool),
+        "sent": np.zeros(m),
+        "delivered": np.zeros(m),
+        "beyond": np.zeros(m),
+        "export_risk": np.zeros(m),
+        "vd_total": np.zeros(m),
+        "vd_deficit": np.zeros(m),
+        "vd_deficit_cand": np.zeros((m, cand.size)),
+        "destinations_reached": np.zeros(m, dtype=np.int64),
+        "nodes_reached": np.zeros(m, dtype=np.int64),
+        "subgraph_nodes": int(k_all),
+    }
+    rindptr, rindices, rlen, rent = reverse_csr(
+        np.asarray(adj.indptr, dtype=np.int64),
+        np.asarray(adj.indices, dtype=np.int64),
+        np.asarray(adj.data, dtype=float),
+    )
+    reach_m = r_m * (1.0 + CUT_MARGIN_SHARE)
+    # destination nodes (unique, in node order) within straight-line reach of a source
+    d_local = local[net.d_node]
+    d_live = (d_local >= 0) & (net.d_weight > 0)
+    s_xy = net.node_xy[part.node]
+    roots = np.unique(net.d_node[d_live])
+    near = (
+        np.hypot(
+            net.node_xy[roots][:, None, 0] - s_xy[None, :, 0],
+            net.node_xy[roots][:, None, 1] - s_xy[None, :, 1],
+        )
+        <= reach_m
+    )  # (roots, sources)
+    roots, near = roots[near.any(axis=1)], near[near.any(axis=1)]
+    work = TreeWork(k_all, nnz)
+    targets = np.zeros(k_all, dtype=bool)
+    pos = np.full(k_all, -1, dtype=np.int64)
+    dist = np.full((m, roots.size), np.inf)  # road distance source -> root [m]
+    trees = []
+    t_dij = 0.0
+    for u, root in enumerate(roots):
+        t0 = time.perf_counter()
+        tg = src_local[near[u]]
+        targets[tg] = True
+        k = bounded_tree(rindptr, rindices, rlen, local[root], r_m, work, targets)
+        targets[tg] = False
+        t_dij += time.perf_counter() - t0
+        order = work.order[:k]
+        pos[order] = np.arange(k)
+        parent = np.full(k, -1, dtype=np.int64)
+        fent = np.full(k, -1, dtype=np.int64)
+        parent[1:] = pos[work.pred_node[order[1:]]]
+        fent[1:] = rent[work.pred_entry[order[1:]]]
+        sp = np.where(near[u], pos[src_local], -1)
+        dtree = work.dist[order].copy()
+        dist[sp >= 0, u] = dtree[sp[sp >= 0]]
+        trees.append((parent, fent, dtree, sp))
+        pos[order] = -1
+    work.reset()
+    # the gravity split per source over all destinations (rows of net.d_node)
+    root_of = np.full(net.d_node.size, -1, dtype=np.int64)
+    if roots.size:
+        hit = d_live & np.isin(net.d_node, roots)
+        root_of[hit] = np.searchsorted(roots, net.d_node[hit])
+    q_root = np.zeros((m, roots.size))
+    for j in range(m):
+        dd = np.full(net.d_node.size, np.inf)
+        has = root_of >= 0
+        dd[has] = dist[j, root_of[has]]
+        split = _gravity(part, net, dd, j)
+        if split is None:
+            continue
+        q, reach, far = split
+        out["routed"][j] = True
+        out["sent"][j] = part.volume_l[j]
+        out["beyond"][j] = q[far].sum()
+        out["delivered"][j] = q[reach].sum()
+        out["destinations_reached"][j] = int(reach.sum())
+        np.add.at(q_root[j], root_of[reach], q[reach])
+    # per tree: flows, volume-distance and deficit sums
+    grades, grade_idx = np.unique(part.aki, return_inverse=True)
+    cand_ok = cand[None, :] > part.aki[:, None]
+    acc = np.zeros((len(_ACC_FIELDS), nnz))
+    bits = np.zeros((nnz, max(1, -(-m // 64))), dtype=np.uint64)
+    req = np.ascontiguousarray(net.req_clean[ents])
+    ent_len = net.length_m[ents]
+    for u, (parent, fent, dtree, sp) in enumerate(trees):
+        use = (sp >= 0) & (q_root[:, u] > 0)
+        if not use.any():
+            continue
+        rows = np.flatnonzero(use)
+        root_tree_sums(
+            parent,
+            fent,
+            dtree,
+            sp[rows],
+            q_root[rows, u],
+            grade_idx[rows].astype(np.int64),
+            rows.astype(np.int64),
+            cand_ok,
+            ent_len,
+            req,
+            grades.astype(float),
+            cand.astype(float),
+            r_m,
+            acc,
+            bits,
+            out,
+        )
+    acc[6] = np.bitwise_count(bits).sum(axis=1)
+    out["vd_deficit_cand"][~cand_ok] = np.nan
+    used = np.flatnonzero(acc[6] > 0)
+    out["entries"] = ents[used]
+    out["acc"] = acc[:, used]
+    out["dijkstra_s"] = t_dij
+    return out
+
+
+def _partition_by_source(part: _SourceBatch, net: _Network) -> dict[str, Any]:
     """Routes one partition of sources on its subgraph and prices their trees (steps 1–7 of
     the module docstring). Per source: the station results; per local entry: the sums over
     the partition's sources, in source order (each tree uses an entry at most once)."""
@@ -734,7 +945,6 @@ def _corridor_partition(part: _SourceBatch, net: _Network) -> dict[str, Any]:
     d_local = local[net.d_node]
     d_in = d_local >= 0
     d_xy = net.node_xy[net.d_node]
-    d_comp = net.component[net.d_node]
     ent_len = net.length_m[ents]
     req_clean = net.req_clean[ents]
     loc = net.local_aki[ents]
@@ -773,30 +983,15 @@ def _corridor_partition(part: _SourceBatch, net: _Network) -> dict[str, Any]:
         targets[d_local[near]] = False
         t_dij += time.perf_counter() - t0
         d = work.dist
-        w = net.d_weight
-        if part.exclude[j] is not None:
-            w = w.copy()
-            w[part.exclude[j]] = 0.0
         dd = np.full(d_local.size, np.inf)
         dd[d_in] = d[d_local[d_in]]
-        fin = np.isfinite(dd)
-        live = w > 0
-        reach = fin & live
-        far = ~fin & live & (d_comp == net.component[part.node[j]])
-        f = np.zeros(d_local.size)
-        f[reach] = decay_weight(dd[reach] / _M_PER_KM, params)
-        if far.any():
-            eu = np.hypot(*(d_xy[far] - net.node_xy[part.node[j]]).T)
-            f[far] = decay_weight(np.maximum(eu, r_m) / _M_PER_KM, params)
-        g = w * f
-        tot = g.sum()
         out["nodes_reached"][j] = k
-        if not tot > 0:
+        split = _gravity(part, net, dd, j)
+        if split is None:
             continue
-        vol = part.volume_l[j]
-        q = vol * (g / tot)
+        q, reach, far = split
         out["routed"][j] = True
-        out["sent"][j] = vol
+        out["sent"][j] = part.volume_l[j]
         out["beyond"][j] = q[far].sum()
         out["destinations_reached"][j] = int(reach.sum())
         # demand at the destination nodes (in destination order), then subtree sums

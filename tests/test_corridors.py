@@ -75,6 +75,11 @@ def random_graph(seed, n=50, m=140):
     return rg.graph_from_edges(xy, u, v, length, crs=UTM, oneway=oneway), rng
 
 
+#: Both ways of growing the trees (one per source; one per destination on the reverse graph)
+#: must meet every outside reference below.
+ROOTS = ["sources", "destinations"]
+
+
 # ----------------------------------------------------------------------------------------------
 # Building blocks
 # ----------------------------------------------------------------------------------------------
@@ -148,7 +153,8 @@ def _networkx_flows(graph, sources, dests, params):
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2, 3])
-def test_flows_equal_networkx_paths_walked_per_destination(seed):
+@pytest.mark.parametrize("root", ROOTS)
+def test_flows_equal_networkx_paths_walked_per_destination(seed, root):
     graph, rng = random_graph(seed)
     comp = graph.component
     big = np.bincount(comp).argmax()
@@ -159,7 +165,7 @@ def test_flows_equal_networkx_paths_walked_per_destination(seed):
     dests = pd.DataFrame({"node": dsts, "weight": rng.uniform(100, 5000, 8)})
     params = co.CorridorParams(tank_range_km=1e4)  # everything within range
     res = co.compute_corridors(graph, flat_profiles(graph), sources, dests, toy_requirement,
-                               params)
+                               params, tree_root=root)
     expect, delivered = _networkx_flows(graph, sources, dests, params)
     got = {(int(a), int(b)): f for a, b, f in zip(res.edges["from_node"], res.edges["to_node"],
                                                   res.edges["flow_l_per_month"], strict=True)}
@@ -170,7 +176,8 @@ def test_flows_equal_networkx_paths_walked_per_destination(seed):
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2])
-def test_flows_are_conserved_per_source(seed):
+@pytest.mark.parametrize("root", ROOTS)
+def test_flows_are_conserved_per_source(seed, root):
     """sent = delivered + beyond_range per source (to 1e-9 relative), with a short tank range
     so that part of the volume is beyond range, plus unsnapped and compliant stations."""
     graph, rng = random_graph(seed, n=80, m=200)
@@ -185,7 +192,8 @@ def test_flows_are_conserved_per_source(seed):
     st.loc[0, "node"] = -1
     st.loc[0, "aki"] = 85.0
     params = co.CorridorParams(tank_range_km=25.0, decay_km=20.0)
-    res = co.compute_corridors(graph, flat_profiles(graph), st, None, toy_requirement, params)
+    res = co.compute_corridors(graph, flat_profiles(graph), st, None, toy_requirement, params,
+                               tree_root=root)
     s = res.stations
     src = s["status"] == "source"
     assert src.sum() >= 3
@@ -222,7 +230,8 @@ def test_a_large_unreachable_part_of_the_graph_changes_nothing():
     pd.testing.assert_frame_equal(a.stations, b.stations)
 
 
-def test_gravity_split_follows_the_decay_models():
+@pytest.mark.parametrize("root", ROOTS)
+def test_gravity_split_follows_the_decay_models(root):
     """Source in the middle of a straight road, destinations 20 km west and 50 km east:
     q_w / q_e = w_w f(20) / (w_e f(50)) — exponential and power decay (analytic)."""
     g = line_graph(8, 10_000.0)  # nodes at 0, 10, …, 70 km
@@ -232,18 +241,20 @@ def test_gravity_split_follows_the_decay_models():
         (co.CorridorParams(decay_km=40.0), lambda d: np.exp(-d / 40.0)),
         (co.CorridorParams(decay_model="power", decay_exponent=1.5), lambda d: d ** -1.5),
     ]:
-        res = co.compute_corridors(g, flat_profiles(g), sources, dests, toy_requirement, params)
+        res = co.compute_corridors(g, flat_profiles(g), sources, dests, toy_requirement, params,
+                                   tree_root=root)
         e = res.edges.set_index(["from_node", "to_node"])["flow_l_per_month"]
         qw, qe = e[(2, 1)], e[(2, 3)]
         assert qw / qe == pytest.approx(300 * f(20.0) / (900 * f(50.0)), rel=1e-12)
         assert qw + qe == pytest.approx(1000.0, rel=1e-12)
 
 
-def test_own_station_is_not_a_destination():
+@pytest.mark.parametrize("root", ROOTS)
+def test_own_station_is_not_a_destination(root):
     g = line_graph(3, 10_000.0)
     st = pd.DataFrame({"node": [0, 0, 2], "volume_l": [1000.0, 5000.0, 1000.0],
                        "aki": [85.0, 87.0, 87.0]})
-    res = co.compute_corridors(g, flat_profiles(g), st, None, toy_requirement)
+    res = co.compute_corridors(g, flat_profiles(g), st, None, toy_requirement, tree_root=root)
     # station 0 sends to station 1 (same node, d = 0) and station 2 (20 km), not to itself
     w1, w2 = 5000.0, 1000.0 * np.exp(-20.0 / co.CorridorParams().decay_km)
     edge = res.edges.set_index(["from_node", "to_node"])["flow_l_per_month"]
@@ -255,7 +266,8 @@ def test_own_station_is_not_a_destination():
 # ----------------------------------------------------------------------------------------------
 
 
-def test_export_risk_and_deficit_share_match_the_closed_form():
+@pytest.mark.parametrize("root", ROOTS)
+def test_export_risk_and_deficit_share_match_the_closed_form(root):
     """Road of 20 edges × 10 km, source at 0 km, one destination at 200 km, R = 500 km.
     The first 10 edges are high (no deficit), the last 10 low (deficit δ = req − 85).
     VD = V ∫ σ dx, σ = 1 − x/R; risk = VD_low · δ / R_km; share in deficit = VD_low / VD."""
@@ -266,7 +278,7 @@ def test_export_risk_and_deficit_share_match_the_closed_form():
     sources = pd.DataFrame({"node": [0], "volume_l": [v], "aki": [aki]})
     dests = pd.DataFrame({"node": [20], "weight": [1.0]})
     res = co.compute_corridors(g, prof, sources, dests, toy_requirement,
-                               co.CorridorParams(tank_range_km=r))
+                               co.CorridorParams(tank_range_km=r), tree_root=root)
     def integral(a, b):
         return (b - a) - (b * b - a * a) / (2 * r)
     delta = toy_requirement(0.0, 0.0, 0.0) - aki
@@ -282,7 +294,8 @@ def test_export_risk_and_deficit_share_match_the_closed_form():
     assert last["deficit_aki"] == pytest.approx(delta, rel=1e-12)
 
 
-def test_long_edge_down_a_grade_is_scored_on_its_low_part():
+@pytest.mark.parametrize("root", ROOTS)
+def test_long_edge_down_a_grade_is_scored_on_its_low_part(root):
     """One 50 km edge whose five length bins lie at 0, 0, 1000, 2000, 3000 m (mean 1200 m).
     The toy fleet needs 88.5, 88.5, 85.6, 82.8, 79.9 AKI there: with 85 AKI fuel the bins
     in deficit are the first three, so 3/5 of the volume-distance is in deficit and
@@ -294,12 +307,12 @@ def test_long_edge_down_a_grade_is_scored_on_its_low_part():
         prof[c] = z
     sources = pd.DataFrame({"node": [0], "volume_l": [1000.0], "aki": [85.0]})
     dests = pd.DataFrame({"node": [1], "weight": [1.0]})
-    res = co.compute_corridors(g, prof, sources, dests, toy_requirement)
+    res = co.compute_corridors(g, prof, sources, dests, toy_requirement, tree_root=root)
     expect = (3.5 + 3.5 + (88.5 - 1000 / 350 - 85.0)) / 5
     assert res.edges["deficit_aki"].iloc[0] == pytest.approx(expect, rel=1e-12)
     assert res.stations["fuel_share_in_deficit"].iloc[0] == pytest.approx(0.6, rel=1e-12)
     mean = co.compute_corridors(g, prof, sources, dests, toy_requirement,
-                                co.CorridorParams(requirement_elevation="mean"))
+                                co.CorridorParams(requirement_elevation="mean"), tree_root=root)
     assert mean.edges["deficit_aki"].iloc[0] == pytest.approx(88.5 - 1200 / 350 - 85.0)
 
 
@@ -324,10 +337,11 @@ def test_refill_dilution_blends_the_tank_towards_local_fuel():
             > res.stations["export_risk_l_aki_per_month"].iloc[0])
 
 
-def test_corridor_lines_merge_directions():
+@pytest.mark.parametrize("root", ROOTS)
+def test_corridor_lines_merge_directions(root):
     g = line_graph(4, 10_000.0)
     st = pd.DataFrame({"node": [0, 3], "volume_l": [1000.0, 2000.0], "aki": [85.0, 85.0]})
-    res = co.compute_corridors(g, flat_profiles(g), st, None, toy_requirement)
+    res = co.compute_corridors(g, flat_profiles(g), st, None, toy_requirement, tree_root=root)
     lines = co.corridor_lines(g, res)
     assert len(lines) == 3
     assert set(lines["direction"]) == {"both"}
@@ -450,3 +464,82 @@ def test_a_climb_low_down_scores_above_the_same_climb_high_up(tmp_path, requirem
     lo = by_y[by_y["y"] < Y0 - 5000]["deficit_aki"].mean()
     hi = by_y[by_y["y"] > Y0 - 5000]["deficit_aki"].mean()
     assert lo > hi
+
+
+# ----------------------------------------------------------------------------------------------
+# Trees rooted at the destinations
+# ----------------------------------------------------------------------------------------------
+
+
+def _frames_close(a: pd.DataFrame, b: pd.DataFrame, keys: list[str]) -> None:
+    m = a.merge(b, on=keys, how="outer", suffixes=("_a", "_b"), indicator=True)
+    assert (m["_merge"] == "both").all(), "the two methods load different edge-directions"
+    for c in a.columns.difference(keys):
+        x, y = m[f"{c}_a"].to_numpy(), m[f"{c}_b"].to_numpy()
+        if x.dtype.kind == "f":
+            np.testing.assert_allclose(x, y, rtol=1e-9, atol=1e-9, err_msg=c)
+        else:
+            np.testing.assert_array_equal(x, y, err_msg=c)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2, 3, 4, 5])
+def test_destination_trees_give_the_sums_of_source_trees(seed):
+    """Random graphs with one-way edges and continuous lengths (shortest paths unique): one
+    tree per destination node on the reverse graph gives every station and edge-direction
+    result of one tree per source (itself checked against networkx above) to 1e-9, with
+    several grades, candidate grades, two destinations on one node, a destination that is
+    the source itself (skipped by id), destinations beyond the range and both decay models."""
+    graph, rng = random_graph(seed, n=80, m=220)
+    m = graph.n_edges
+    elev = rng.uniform(0, 2500, m)
+    prof = flat_profiles(graph, elevation_m=elev, grade_pct=rng.uniform(0, 9, m))
+    for k, c in enumerate(rg.PROFILE_QUANTILE_COLUMNS):
+        prof[c] = elev + 150.0 * (k - 2)
+    prof.loc[prof.index[:3], "elevation_p50_m"] = np.nan  # unknown requirement on 3 edges
+    ns = 16
+    st = pd.DataFrame({
+        "node": rng.choice(graph.n_nodes, ns, replace=True),
+        "volume_l": rng.uniform(1e3, 1e5, ns),
+        "aki": rng.choice([85.0, 85.5, 86.0, 88.0], ns),
+        "id": [f"s{i}" for i in range(ns)],
+    })
+    st.loc[0, "node"] = -1
+    towns = pd.DataFrame({
+        "node": np.r_[rng.choice(graph.n_nodes, 5), st["node"].iloc[3], st["node"].iloc[3]],
+        "weight": rng.uniform(1e3, 1e4, 7),
+        "id": ["t0", "t1", "t2", "t3", "t4", "s3", "t6"],
+    })
+    params = co.CorridorParams(tank_range_km=45.0, decay_km=20.0,
+                               decay_model="power" if seed % 2 else "exponential")
+    loaded, beyond = 0, False
+    for dests in (towns, None):
+        kw = {"candidate_aki": np.arange(80.0, 87.0, 0.5), "sources_per_partition": 5}
+        a = co.compute_corridors(graph, prof, st, dests, toy_requirement, params,
+                                 tree_root="sources", **kw)
+        b = co.compute_corridors(graph, prof, st, dests, toy_requirement, params,
+                                 tree_root="destinations", **kw)
+        assert a.summary["tree_root"] == "sources" and b.summary["tree_root"] == "destinations"
+        _frames_close(a.stations.drop(columns="nodes_reached").reset_index(),
+                      b.stations.drop(columns="nodes_reached").reset_index(), ["index"])
+        _frames_close(a.edges, b.edges, ["edge", "direction"])
+        np.testing.assert_allclose(a.candidate_share_in_deficit, b.candidate_share_in_deficit,
+                                   rtol=1e-9, atol=1e-12)
+        assert (b.stations["nodes_reached"] == 0).all()
+        loaded += len(a.edges)
+        beyond |= bool((a.stations["beyond_range_l_per_month"] > 0).any())
+    assert loaded > 10 and beyond  # the case exercises flows and the beyond-range share
+
+
+def test_auto_roots_trees_at_the_fewer_end_and_only_without_dilution():
+    g = line_graph(6, 10_000.0)
+    st = pd.DataFrame({"node": [0, 1, 2], "volume_l": 1000.0, "aki": 85.0})
+    one_town = pd.DataFrame({"node": [5], "weight": [1.0]})
+    many = pd.DataFrame({"node": [0, 1, 2, 3, 4, 5], "weight": 1.0})
+    prof = flat_profiles(g)
+    run = lambda d, p=None, **kw: co.compute_corridors(g, prof, st, d, toy_requirement, p, **kw)  # noqa: E731
+    assert run(one_town).summary["tree_root"] == "destinations"
+    assert run(many).summary["tree_root"] == "sources"
+    diluted = co.CorridorParams(refill_dilution=0.5)
+    assert run(one_town, diluted).summary["tree_root"] == "sources"
+    with pytest.raises(co.CorridorError, match="refill_dilution"):
+        run(one_town, diluted, tree_root="destinations")

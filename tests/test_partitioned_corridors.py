@@ -133,10 +133,15 @@ def test_subgraph_cut_keeps_every_distance_within_the_range(case):
     assert np.isfinite(cut).sum() == rows.size  # and nothing else is reached
 
 
-def test_partitioning_leaves_station_results_unchanged_and_edges_to_rounding(case):
-    one = _run(case, sources_per_partition=10_000)
-    many = _run(case, sources_per_partition=3)
+ROOTS = ["sources", "destinations"]
+
+
+@pytest.mark.parametrize("root", ROOTS)
+def test_partitioning_leaves_station_results_unchanged_and_edges_to_rounding(case, root):
+    one = _run(case, sources_per_partition=10_000, tree_root=root)
+    many = _run(case, sources_per_partition=3, tree_root=root)
     assert one.summary["partitions"] == 1 and many.summary["partitions"] > 5
+    assert one.summary["tree_root"] == many.summary["tree_root"] == root
     # per station: each source's tree is computed alone, so partitioning changes no bit
     pd.testing.assert_frame_equal(one.stations, many.stations, check_exact=True)
     # per edge: sums over sources in another grouping, equal to rounding
@@ -146,14 +151,17 @@ def test_partitioning_leaves_station_results_unchanged_and_edges_to_rounding(cas
     assert one.summary["sources"] > 20 and len(one.edges) > 100
 
 
-def test_candidate_shares_equal_a_rerun_with_the_raised_grade(case):
+@pytest.mark.parametrize("root", ROOTS)
+def test_candidate_shares_equal_a_rerun_with_the_raised_grade(case, root):
     graph, prof, st, towns, params = case
     cands = np.array([85.5, 86.0, 86.5])
-    res = _run(case, candidate_aki=cands, sources_per_partition=7)
+    res = _run(case, candidate_aki=cands, sources_per_partition=7, tree_root=root)
     for c, grade in enumerate(cands):
         trial = st.copy()
         trial["aki"] = np.where(trial["aki"] < grade, grade, trial["aki"])
-        rerun = co.compute_corridors(graph, prof, trial, towns, toy_requirement, params)
+        rerun = co.compute_corridors(
+            graph, prof, trial, towns, toy_requirement, params, tree_root=root
+        )
         raised = (st["aki"] < grade).to_numpy() & res.stations["is_source"].to_numpy()
         np.testing.assert_array_equal(
             res.candidate_share_in_deficit[raised, c],
@@ -186,12 +194,12 @@ def test_corridor_required_picks_the_lowest_sufficient_grade():
     assert np.isnan(got[5])
 
 
-@pytest.mark.parametrize("mode", ["threads", "dask"])
-def test_every_execution_mode_gives_identical_bits(case, mode):
+@pytest.mark.parametrize(("mode", "root"), [("threads", r) for r in ROOTS] + [("dask", "auto")])
+def test_every_execution_mode_gives_identical_bits(case, mode, root):
     """A real Dask LocalCluster of two worker processes on 127.0.0.1 (or a thread pool)
     against the same partitions run one after another in this process."""
     pytest.importorskip("distributed")
-    kw = {"candidate_aki": np.array([86.0]), "sources_per_partition": 9}
+    kw = {"candidate_aki": np.array([86.0]), "sources_per_partition": 9, "tree_root": root}
     ref = _run(case, **kw)
     with make_executor(ExecutionConfig(mode=mode, workers=2)) as ex:
         got = _run(case, executor=ex, **kw)

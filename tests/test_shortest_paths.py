@@ -12,7 +12,7 @@ import pytest
 from scipy import sparse
 from scipy.sparse.csgraph import dijkstra
 
-from pipeline.shortest_paths import TreeWork, bounded_tree, tree_flows
+from pipeline.shortest_paths import TreeWork, bounded_tree, reverse_csr, tree_flows
 
 
 def random_csr(seed: int, n: int = 400, m: int = 1600) -> sparse.csr_matrix:
@@ -45,6 +45,32 @@ def test_distances_and_reach_equal_scipy(seed, limit):
         e = work.pred_entry[x]
         assert np.all(ix[e] == x)
         np.testing.assert_allclose(work.dist[work.pred_node[x]] + a.data[e], work.dist[x])
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_reverse_graph_trees_give_distances_to_the_root(seed):
+    """A tree on reverse_csr gives every node's distance *to* the root: scipy's Dijkstra on
+    the transposed matrix; each reverse entry stands for a forward entry of the same length."""
+    a = random_csr(seed)
+    ip, ix = a.indptr.astype(np.int64), a.indices.astype(np.int64)
+    rip, rix, rlen, ent = reverse_csr(ip, ix, a.data)
+    np.testing.assert_array_equal(rlen, a.data[ent])
+    t = a.T.tocsr()
+    t.sort_indices()
+    np.testing.assert_array_equal(rip, t.indptr)
+    np.testing.assert_array_equal(rix, t.indices)
+    tails = np.repeat(np.arange(a.shape[0]), np.diff(ip))
+    heads = np.repeat(np.arange(a.shape[0]), np.diff(rip))
+    np.testing.assert_array_equal(ix[ent], heads)  # forward entry runs tail -> row
+    np.testing.assert_array_equal(tails[ent], rix)
+    work = TreeWork(a.shape[0], a.nnz)
+    for root in (0, 5, 300):
+        ref = dijkstra(a, directed=True, indices=root, limit=2000.0)
+        ref_to = dijkstra(t, directed=True, indices=root, limit=2000.0)
+        k = bounded_tree(rip, rix, rlen, root, 2000.0, work)
+        np.testing.assert_allclose(work.dist, ref_to, rtol=1e-12)
+        assert k == np.isfinite(ref_to).sum()
+        assert not np.array_equal(np.isfinite(ref), np.isfinite(ref_to))  # really directed
 
 
 def test_work_arrays_are_reset_between_trees():
