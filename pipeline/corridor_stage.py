@@ -64,11 +64,19 @@ def requirement_function(cfg: RunConfig):
                 np.clip(np.nan_to_num(climb) / c.full_load_climb_m, 0.0, 1.0),
                 0.0,
             )
-        cond = rq.design_conditions(z.ravel(), cfg.design_day, params.reference)
-        cond = cond._replace(
-            sustained_load=np.maximum(load.ravel(), float(cfg.design_day.sustained_load))
-        )
-        out = np.asarray(rq.justified_aki(mix, params, cond).aki, dtype=float)
+        zf = z.ravel()
+        lf = np.maximum(load.ravel(), float(cfg.design_day.sustained_load))
+        # the requirement depends on (elevation, load) only: solve each distinct pair once
+        # (the two directions of an edge share its elevations; most carry no climb load)
+        out = np.full(zf.size, np.nan)
+        ok = np.isfinite(zf) & np.isfinite(lf)
+        key = np.empty(int(ok.sum()), dtype=np.complex128)
+        key.real = zf[ok]
+        key.imag = lf[ok]
+        uniq, inv = np.unique(key, return_inverse=True)
+        cond = rq.design_conditions(uniq.real.copy(), cfg.design_day, params.reference)
+        cond = cond._replace(sustained_load=uniq.imag.copy())
+        out[ok] = np.asarray(rq.justified_aki(mix, params, cond).aki, dtype=float)[inv]
         return out.reshape(z.shape)
 
     return required_aki

@@ -274,7 +274,11 @@ def _unique_rows(xy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     n = xy.shape[0]
     if n == 0:
         return xy.reshape(0, 2), np.zeros(0, dtype=np.int64)
-    order = np.lexsort((xy[:, 1], xy[:, 0]))
+    # a stable sort of x + iy is lexicographic on (x, y): half the time of np.lexsort
+    c = np.empty(n, dtype=np.complex128)
+    c.real = xy[:, 0]
+    c.imag = xy[:, 1]
+    order = np.argsort(c, kind="stable")
     s = xy[order]
     new = np.r_[True, (s[1:, 0] != s[:-1, 0]) | (s[1:, 1] != s[:-1, 1])]
     gid = np.cumsum(new) - 1
@@ -457,9 +461,18 @@ def _dedup_lines(geoms: np.ndarray) -> np.ndarray:
     return ~pd.Series(wkb).duplicated(keep="first").to_numpy()
 
 
+def _unique_sorted(a: np.ndarray) -> np.ndarray:
+    """Sorted unique values of a 1-D array (as ``np.unique``; a sort and a mask are many
+    times faster than numpy 2's hash-based ``np.unique`` on a million integers)."""
+    s = np.sort(np.asarray(a).ravel())
+    if s.size == 0:
+        return s
+    return s[np.r_[True, s[1:] != s[:-1]]]
+
+
 def _vertex_line_pairs(cid: np.ndarray, line_id: np.ndarray, n_lines: int) -> np.ndarray:
     """Sorted unique keys cid·n_lines + line of every (coordinate, line) incidence."""
-    return np.unique(cid.astype(np.int64) * np.int64(n_lines) + line_id.astype(np.int64))
+    return _unique_sorted(cid.astype(np.int64) * np.int64(n_lines) + line_id.astype(np.int64))
 
 
 def _in_sorted(sorted_keys: np.ndarray, q: np.ndarray) -> np.ndarray:
@@ -690,7 +703,7 @@ def build_road_graph(
     parts, part_row = shapely.get_parts(shapely.force_2d(geoms_in), return_index=True)
     tid = shapely.get_type_id(parts)
     is_line = (tid == 1) | (tid == 2)
-    stats["non_line_dropped"] = int(np.unique(part_row[~is_line]).size)
+    stats["non_line_dropped"] = int(_unique_sorted(part_row[~is_line]).size)
     parts, part_row = parts[is_line], part_row[is_line]
     rings = np.flatnonzero(tid[is_line] == 2)
     if rings.size:
@@ -725,7 +738,7 @@ def build_road_graph(
     xy, lid = shapely.get_coordinates(parts, return_index=True)
     n_lines = parts.size
     finite = np.isfinite(xy).all(axis=1)
-    bad_lines = np.unique(lid[~finite])
+    bad_lines = _unique_sorted(lid[~finite])
     stats["empty_dropped"] += int(bad_lines.size)
     keep = ~np.isin(lid, bad_lines)
     xy, lid = xy[keep], lid[keep]
@@ -769,7 +782,7 @@ def build_road_graph(
 
         # 5. Line ends on or near (not on a vertex of) another non-bridge line: join them.
         if (~is_bridge).any():
-            end_cid = np.unique(np.r_[cid[starts], cid[ends]])
+            end_cid = _unique_sorted(np.r_[cid[starts], cid[ends]])
             pts = shapely.points(uniq[end_cid])
             targets = np.flatnonzero(~is_bridge)
             tree = shapely.STRtree(geoms[targets])

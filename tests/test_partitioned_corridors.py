@@ -207,3 +207,31 @@ def test_every_execution_mode_gives_identical_bits(case, mode, root):
     pd.testing.assert_frame_equal(ref.stations, got.stations, check_exact=True)
     pd.testing.assert_frame_equal(ref.edges, got.edges, check_exact=True)
     np.testing.assert_array_equal(ref.candidate_share_in_deficit, got.candidate_share_in_deficit)
+
+
+def test_requirement_function_solves_each_elevation_and_load_once(tmp_path):
+    """The stage's fleet requirement on road entries solves each distinct (elevation, load)
+    pair once; the values must be those of the fleet model called element by element
+    (pipeline.requirement.justified_aki, itself checked against its sources in
+    test_requirement.py), NaN elevation giving NaN."""
+    from pipeline import requirement as rq
+    from pipeline.config import parse_config
+    from pipeline.corridor_stage import requirement_function
+
+    (tmp_path / "st.csv").write_text("x", encoding="utf-8")
+    cfg = parse_config({"inputs": {"stations": "st.csv", "dem": "d.tif"}}, base_dir=tmp_path)
+    rng = np.random.default_rng(5)
+    n = 4000
+    z = np.r_[rng.uniform(0, 3500, n), rng.uniform(0, 3500, 20).repeat(10), np.nan]
+    g = np.r_[rng.uniform(0, 10, n), np.tile([0.0, 9.0], 100), 9.0]
+    c = np.r_[rng.uniform(0, 800, n), np.full(200, 250.0), 100.0]
+    got = requirement_function(cfg)(z, g, c)
+    cc = cfg.corridors
+    load = np.where(g >= cc.climb_grade_threshold_pct, np.clip(c / cc.full_load_climb_m, 0, 1), 0)
+    cond = rq.design_conditions(z, cfg.design_day, cfg.fleet.reference)
+    cond = cond._replace(sustained_load=np.maximum(load, float(cfg.design_day.sustained_load)))
+    mix = rq.mix_array(dict(cfg.fleet_mix.shares), cfg.fleet)
+    want = np.asarray(rq.justified_aki(mix, cfg.fleet, cond).aki, dtype=float)
+    np.testing.assert_array_equal(got, want)
+    assert np.isnan(got[-1]) and np.isfinite(got[:-1]).all()
+    assert (got[n:n + 200:2] < got[n + 1:n + 200:2]).all()  # the climb load raises it
