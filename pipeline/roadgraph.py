@@ -74,6 +74,7 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 import shapely
+from numba import njit
 from numpy.typing import ArrayLike
 from pyproj import CRS, Geod, Transformer
 from scipy import sparse
@@ -475,6 +476,55 @@ def _vertex_line_pairs(cid: np.ndarray, line_id: np.ndarray, n_lines: int) -> np
     return _unique_sorted(cid.astype(np.int64) * np.int64(n_lines) + line_id.astype(np.int64))
 
 
+#: Relative size of a cross product below which two segments from a shared end are treated as
+#: collinear (and left to GEOS): far above the rounding of the product itself.
+_COLLINEAR_REL = 1e-9
+
+
+@njit(cache=True, nogil=True)
+def _meet_beyond_shared_ends(xy, starts, ends, pi, pj):
+    """For each line pair (pi[k], pj[k]): False when the two lines certainly meet only at
+    coordinates that are vertices of both — every pair of their segments either has disjoint
+    bounding boxes or shares exactly one end and is not collinear (two such segments meet at
+    that end alone) — True otherwise (the pair goes to GEOS). Vertices of line l are
+    xy[starts[l]] … xy[ends[l]]."""
+    out = np.zeros(pi.size, dtype=np.bool_)
+    for k in range(pi.size):
+        i = pi[k]
+        j = pj[k]
+        need = False
+        for a in range(starts[i], ends[i]):
+            ax0, ay0, ax1, ay1 = xy[a, 0], xy[a, 1], xy[a + 1, 0], xy[a + 1, 1]
+            for b in range(starts[j], ends[j]):
+                bx0, by0, bx1, by1 = xy[b, 0], xy[b, 1], xy[b + 1, 0], xy[b + 1, 1]
+                if (
+                    max(ax0, ax1) < min(bx0, bx1)
+                    or max(bx0, bx1) < min(ax0, ax1)
+                    or max(ay0, ay1) < min(by0, by1)
+                    or max(by0, by1) < min(ay0, ay1)
+                ):
+                    continue  # disjoint boxes: the segments cannot meet
+                s00 = ax0 == bx0 and ay0 == by0
+                s01 = ax0 == bx1 and ay0 == by1
+                s10 = ax1 == bx0 and ay1 == by0
+                s11 = ax1 == bx1 and ay1 == by1
+                if s00 + s01 + s10 + s11 != 1:
+                    need = True  # no shared end (or the same segment): ask GEOS
+                    break
+                # vectors from the shared end to the other ends
+                px, py = (ax0, ay0) if (s00 or s01) else (ax1, ay1)
+                ux, uy = (ax1 - px, ay1 - py) if (s00 or s01) else (ax0 - px, ay0 - py)
+                vx, vy = (bx1 - px, by1 - py) if (s00 or s10) else (bx0 - px, by0 - py)
+                cross = ux * vy - uy * vx
+                if abs(cross) <= _COLLINEAR_REL * np.hypot(ux, uy) * np.hypot(vx, vy):
+                    need = True  # (nearly) collinear: they may overlap
+                    break
+            if need:
+                break
+        out[k] = need
+    return out
+
+
 def _in_sorted(sorted_keys: np.ndarray, q: np.ndarray) -> np.ndarray:
     if sorted_keys.size == 0:
         return np.zeros(q.shape, dtype=bool)
@@ -823,6 +873,10 @@ def build_road_graph(
         pi, pj = pi[m], pj[m]
         br_pair = is_bridge[pi] | is_bridge[pj]
         pi, pj = pi[~br_pair], pj[~br_pair]
+        # Most pairs only share an end (a junction): GEOS would find their one common point
+        # to be a vertex of both. Only pairs that may meet elsewhere are intersected.
+        need = _meet_beyond_shared_ends(xy, starts, ends, pi.astype(np.int64), pj.astype(np.int64))
+        pi, pj = pi[need], pj[need]
         # Bridges: count lines that meet a bridge away from its ends (left unconnected).
         if is_bridge.any():
             bq, bo = tree.query(geoms[is_bridge], predicate="intersects")

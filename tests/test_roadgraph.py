@@ -280,6 +280,56 @@ def test_noding_of_random_segments_agrees_with_geos_noding():
                 assert not np.isfinite(row[j])
 
 
+def _lattice_polylines(seed, n=120, side=12, max_vertices=4):
+    """Random polylines on an integer lattice (×100 m): shared ends, lines through other
+    lines' vertices, collinear overlaps and proper crossings all occur often."""
+    rng = np.random.default_rng(seed)
+    lines = []
+    for _ in range(n):
+        k = int(rng.integers(2, max_vertices + 1))
+        pts = rng.integers(0, side, (k, 2)) * 100.0
+        if len(np.unique(pts, axis=0)) == k:
+            lines.append(LineString(pts))
+    return lines
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_pairs_left_out_of_the_crossing_search_meet_only_at_shared_vertices(seed):
+    """GEOS (shapely.intersection) as the reference: every line pair the pre-filter leaves
+    out intersects only at coordinates that are vertices of both lines."""
+    lines = np.array(_lattice_polylines(seed), dtype=object)
+    xy, lid = shapely.get_coordinates(lines, return_index=True)
+    starts, ends = rg._line_bounds(lid, lines.size)
+    pi, pj = shapely.STRtree(lines).query(lines, predicate="intersects")
+    m = pi < pj
+    pi, pj = pi[m].astype(np.int64), pj[m].astype(np.int64)
+    need = rg._meet_beyond_shared_ends(xy, starts, ends, pi, pj)
+    assert 0 < need.sum() < need.size  # both kinds occur
+    for i, j in zip(pi[~need], pj[~need], strict=True):
+        pts = shapely.get_coordinates(shapely.intersection(lines[i], lines[j]))
+        vi = {tuple(c) for c in shapely.get_coordinates(lines[i])}
+        vj = {tuple(c) for c in shapely.get_coordinates(lines[j])}
+        assert all(tuple(c) in vi and tuple(c) in vj for c in pts), (i, j, pts)
+
+
+@pytest.mark.parametrize("seed", [3, 4])
+def test_crossing_prefilter_changes_no_graph(seed, monkeypatch):
+    """The graph with the pre-filter equals the graph built by intersecting every touching
+    pair, on lattice polylines full of junctions, overlaps and crossings."""
+    gdf = _gdf(_lattice_polylines(seed, n=150))
+    fast = rg.build_road_graph(gdf, snap_tolerance_m=0.0)
+    monkeypatch.setattr(
+        rg, "_meet_beyond_shared_ends", lambda xy, s, e, pi, pj: np.ones(pi.size, dtype=bool)
+    )
+    full = rg.build_road_graph(gdf, snap_tolerance_m=0.0)
+    np.testing.assert_array_equal(fast.node_xy, full.node_xy)
+    np.testing.assert_array_equal(fast.u, full.u)
+    np.testing.assert_array_equal(fast.v, full.v)
+    np.testing.assert_array_equal(fast.length_m, full.length_m)
+    assert fast.stats == full.stats
+    assert fast.stats["intersections_noded"] > 10
+
+
 def test_entry_index_finds_every_stored_entry_and_nothing_else():
     rng = np.random.default_rng(9)
     n = 30
