@@ -100,6 +100,7 @@ from pipeline.roadgraph import PROFILE_QUANTILE_COLUMNS, RoadGraph
 from pipeline.shortest_paths import (
     TreeWork,
     bounded_tree,
+    path_nodes,
     reverse_csr,
     root_tree_sums,
     tree_flows,
@@ -847,6 +848,7 @@ def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, An
     work = TreeWork(k_all, nnz)
     targets = np.zeros(k_all, dtype=bool)
     pos = np.full(k_all, -1, dtype=np.int64)
+    mark = np.zeros(k_all, dtype=bool)
     dist = np.full((m, roots.size), np.inf)  # road distance source -> root [m]
     trees = []
     t_dij = 0.0
@@ -857,17 +859,25 @@ def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, An
         k = bounded_tree(rindptr, rindices, rlen, local[root], r_m, work, targets)
         targets[tg] = False
         t_dij += time.perf_counter() - t0
+        # keep only the part of the tree on the partition's sources' paths to the root
         order = work.order[:k]
-        pos[order] = np.arange(k)
-        parent = np.full(k, -1, dtype=np.int64)
-        fent = np.full(k, -1, dtype=np.int64)
-        parent[1:] = pos[work.pred_node[order[1:]]]
-        fent[1:] = rent[work.pred_entry[order[1:]]]
+        pos[order] = 0
+        ends = np.unique(src_local[near[u] & (pos[src_local] == 0)])
+        pos[order] = -1
+        keep = path_nodes(work, ends, mark)
+        if keep.size == 0:
+            trees.append(None)
+            continue
+        pos[keep] = np.arange(keep.size)
+        parent = np.full(keep.size, -1, dtype=np.int64)
+        fent = np.full(keep.size, -1, dtype=np.int64)
+        parent[1:] = pos[work.pred_node[keep[1:]]]
+        fent[1:] = rent[work.pred_entry[keep[1:]]]
         sp = np.where(near[u], pos[src_local], -1)
-        dtree = work.dist[order].copy()
+        dtree = work.dist[keep]
         dist[sp >= 0, u] = dtree[sp[sp >= 0]]
         trees.append((parent, fent, dtree, sp))
-        pos[order] = -1
+        pos[keep] = -1
     work.reset()
     # the gravity split per source over all destinations (rows of net.d_node)
     root_of = np.full(net.d_node.size, -1, dtype=np.int64)
@@ -896,7 +906,10 @@ def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, An
     bits = np.zeros((nnz, max(1, -(-m // 64))), dtype=np.uint64)
     req = np.ascontiguousarray(net.req_clean[ents])
     ent_len = net.length_m[ents]
-    for u, (parent, fent, dtree, sp) in enumerate(trees):
+    for u, tree in enumerate(trees):
+        if tree is None:
+            continue
+        parent, fent, dtree, sp = tree
         use = (sp >= 0) & (q_root[:, u] > 0)
         if not use.any():
             continue

@@ -24,7 +24,14 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["TreeWork", "bounded_tree", "reverse_csr", "root_tree_sums", "tree_flows"]
+__all__ = [
+    "TreeWork",
+    "bounded_tree",
+    "path_nodes",
+    "reverse_csr",
+    "root_tree_sums",
+    "tree_flows",
+]
 
 
 class TreeWork:
@@ -261,6 +268,30 @@ def reverse_csr(
     rindptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(np.bincount(indices, minlength=n), out=rindptr[1:])
     return rindptr, tails[perm], np.asarray(length_m, dtype=float)[perm], perm
+
+
+@njit(cache=True, nogil=True)
+def _mark_paths(pred_node, ends, mark):
+    for i in range(ends.size):
+        x = ends[i]
+        while x >= 0 and not mark[x]:
+            mark[x] = True
+            x = pred_node[x]
+
+
+def path_nodes(work: TreeWork, ends: np.ndarray, mark: np.ndarray) -> np.ndarray:
+    """Nodes on the tree paths from the settled nodes ``ends`` to the last tree's root, in
+    settling order (the root first; empty when ``ends`` is). ``mark`` is a caller-owned
+    all-False bool array of the graph's size, left all False. Walking each path stops at the
+    first node already marked, so the cost is the size of the union of the paths."""
+    ends = np.asarray(ends, dtype=np.int64)
+    if ends.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    _mark_paths(work.pred_node, ends, mark)
+    order = work.order[: work.size]
+    nodes = order[mark[order]]
+    mark[nodes] = False
+    return nodes
 
 
 @njit(cache=True, nogil=True)

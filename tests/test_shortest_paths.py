@@ -12,7 +12,13 @@ import pytest
 from scipy import sparse
 from scipy.sparse.csgraph import dijkstra
 
-from pipeline.shortest_paths import TreeWork, bounded_tree, reverse_csr, tree_flows
+from pipeline.shortest_paths import (
+    TreeWork,
+    bounded_tree,
+    path_nodes,
+    reverse_csr,
+    tree_flows,
+)
 
 
 def random_csr(seed: int, n: int = 400, m: int = 1600) -> sparse.csr_matrix:
@@ -71,6 +77,31 @@ def test_reverse_graph_trees_give_distances_to_the_root(seed):
         np.testing.assert_allclose(work.dist, ref_to, rtol=1e-12)
         assert k == np.isfinite(ref_to).sum()
         assert not np.array_equal(np.isfinite(ref), np.isfinite(ref_to))  # really directed
+
+
+def test_path_nodes_are_the_union_of_the_walked_paths_in_settling_order():
+    """Reference: each end's path walked predecessor by predecessor in Python."""
+    a = random_csr(4)
+    work = TreeWork(a.shape[0], a.nnz)
+    k = bounded_tree(a.indptr.astype(np.int64), a.indices.astype(np.int64), a.data, 3, 2500.0,
+                     work)
+    order = work.order[:k]
+    rng = np.random.default_rng(0)
+    mark = np.zeros(a.shape[0], dtype=bool)
+    for n_ends in (1, 5, 40):
+        ends = rng.choice(order, n_ends, replace=False)
+        want = set()
+        for x in ends:
+            while x >= 0:
+                want.add(int(x))
+                x = work.pred_node[x]
+        got = path_nodes(work, ends, mark)
+        assert set(got.tolist()) == want and got.size == len(want)
+        rank = np.empty(a.shape[0], dtype=np.int64)
+        rank[order] = np.arange(k)
+        assert np.all(np.diff(rank[got]) > 0) and got[0] == 3  # settling order, root first
+        assert not mark.any()
+    assert path_nodes(work, np.zeros(0, dtype=np.int64), mark).size == 0
 
 
 def test_work_arrays_are_reset_between_trees():
