@@ -767,11 +767,30 @@ def _corridor_partition(part: _SourceBatch, net: _Network) -> dict[str, Any]:
     return _partition_by_source(part, net)
 
 
+def _partition_outputs(m: int, n_candidates: int, subgraph_nodes: int) -> dict[str, Any]:
+    """Zeroed per-source results of a partition of ``m`` sources (both tree roots fill the
+    same keys; the driver combines them in partition order)."""
+    return {
+        "routed": np.zeros(m, dtype=bool),
+        "sent": np.zeros(m),
+        "delivered": np.zeros(m),
+        "beyond": np.zeros(m),
+        "export_risk": np.zeros(m),
+        "vd_total": np.zeros(m),
+        "vd_deficit": np.zeros(m),
+        "vd_deficit_cand": np.zeros((m, n_candidates)),
+        "destinations_reached": np.zeros(m, dtype=np.int64),
+        "nodes_reached": np.zeros(m, dtype=np.int64),
+        "subgraph_nodes": int(subgraph_nodes),
+    }
+
+
 def _gravity(
-    part: _SourceBatch, net: _Network, dd: np.ndarray, j: int
+    part: _SourceBatch, net: _Network, dd: np.ndarray, j: int, out: dict[str, Any]
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
     """Step 2 for source j of the partition: its share q [L/month] to every destination, given
-    the road distances ``dd`` [m] (inf where not reached within R). Returns (q, reached, far)
+    the road distances ``dd`` [m] (inf where not reached within R). Records ``routed``,
+    ``sent``, ``beyond`` and ``destinations_reached`` in ``out``; returns (q, reached, far),
     or None when no destination attracts anything."""
     params = net.params
     r_m = params.tank_range_km * _M_PER_KM
@@ -792,7 +811,12 @@ def _gravity(
     tot = g.sum()
     if not tot > 0:
         return None
-    return part.volume_l[j] * (g / tot), reach, far
+    q = part.volume_l[j] * (g / tot)
+    out["routed"][j] = True
+    out["sent"][j] = part.volume_l[j]
+    out["beyond"][j] = q[far].sum()
+    out["destinations_reached"][j] = int(reach.sum())
+    return q, reach, far
 
 
 def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, Any]:
@@ -813,19 +837,7 @@ def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, An
     src_local = local[part.node]
     cand = net.candidate_aki
     m = part.rows.size
-    out: dict[str, Any] = {
-        "routed": np.zeros(m, dtype=bool),
-        "sent": np.zeros(m),
-        "delivered": np.zeros(m),
-        "beyond": np.zeros(m),
-        "export_risk": np.zeros(m),
-        "vd_total": np.zeros(m),
-        "vd_deficit": np.zeros(m),
-        "vd_deficit_cand": np.zeros((m, cand.size)),
-        "destinations_reached": np.zeros(m, dtype=np.int64),
-        "nodes_reached": np.zeros(m, dtype=np.int64),
-        "subgraph_nodes": int(k_all),
-    }
+    out = _partition_outputs(m, cand.size, k_all)
     rindptr, rindices, rlen, rent = reverse_csr(
         np.asarray(adj.indptr, dtype=np.int64),
         np.asarray(adj.indices, dtype=np.int64),
@@ -889,15 +901,11 @@ def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, An
         dd = np.full(net.d_node.size, np.inf)
         has = root_of >= 0
         dd[has] = dist[j, root_of[has]]
-        split = _gravity(part, net, dd, j)
+        split = _gravity(part, net, dd, j, out)
         if split is None:
             continue
-        q, reach, far = split
-        out["routed"][j] = True
-        out["sent"][j] = part.volume_l[j]
-        out["beyond"][j] = q[far].sum()
+        q, reach, _ = split
         out["delivered"][j] = q[reach].sum()
-        out["destinations_reached"][j] = int(reach.sum())
         np.add.at(q_root[j], root_of[reach], q[reach])
     # per tree: flows, volume-distance and deficit sums
     grades, grade_idx = np.unique(part.aki, return_inverse=True)
@@ -964,19 +972,7 @@ def _partition_by_source(part: _SourceBatch, net: _Network) -> dict[str, Any]:
     n_bins = req_clean.shape[1]
     cand = net.candidate_aki
     m = part.rows.size
-    out: dict[str, Any] = {
-        "routed": np.zeros(m, dtype=bool),
-        "sent": np.zeros(m),
-        "delivered": np.zeros(m),
-        "beyond": np.zeros(m),
-        "export_risk": np.zeros(m),
-        "vd_total": np.zeros(m),
-        "vd_deficit": np.zeros(m),
-        "vd_deficit_cand": np.zeros((m, cand.size)),
-        "destinations_reached": np.zeros(m, dtype=np.int64),
-        "nodes_reached": np.zeros(m, dtype=np.int64),
-        "subgraph_nodes": int(k_all),
-    }
+    out = _partition_outputs(m, cand.size, k_all)
     acc = np.zeros((len(_ACC_FIELDS), nnz))
     work = TreeWork(k_all, nnz)
     # A tree may stop once every destination that could lie within the range is settled:
@@ -999,14 +995,10 @@ def _partition_by_source(part: _SourceBatch, net: _Network) -> dict[str, Any]:
         dd = np.full(d_local.size, np.inf)
         dd[d_in] = d[d_local[d_in]]
         out["nodes_reached"][j] = k
-        split = _gravity(part, net, dd, j)
+        split = _gravity(part, net, dd, j, out)
         if split is None:
             continue
-        q, reach, far = split
-        out["routed"][j] = True
-        out["sent"][j] = part.volume_l[j]
-        out["beyond"][j] = q[far].sum()
-        out["destinations_reached"][j] = int(reach.sum())
+        q, reach, _ = split
         # demand at the destination nodes (in destination order), then subtree sums
         np.add.at(work.flow, d_local[reach], q[reach])
         flow_at = tree_flows(work)
