@@ -735,7 +735,7 @@ def _cut(net: _Network, node: np.ndarray) -> tuple[Any, np.ndarray, np.ndarray, 
     and entries alike, and a tree grown on either is the same.
 
     Returns (adjacency, global node of each local node, global entry of each local entry,
-    sorted key tail·k + head of each local entry)."""
+    local number of each global node, −1 outside the cut)."""
     r = net.params.tank_range_km * _M_PER_KM * (1.0 + CUT_MARGIN_SHARE)
     xy = net.node_xy
     n = xy.shape[0]
@@ -757,7 +757,7 @@ def _cut(net: _Network, node: np.ndarray) -> tuple[Any, np.ndarray, np.ndarray, 
     indptr = np.zeros(k + 1, dtype=np.int64)
     np.cumsum(np.bincount(key // max(k, 1), minlength=k), out=indptr[1:])
     adj = sparse.csr_matrix((net.length_m[ents], key % max(k, 1), indptr), shape=(k, k))
-    return adj, nodes, ents, key
+    return adj, nodes, ents, local
 
 
 def _corridor_partition(part: _SourceBatch, net: _Network) -> dict[str, Any]:
@@ -829,11 +829,9 @@ def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, An
     routed on one of them, chosen from the destination's side."""
     params = net.params
     r_m = params.tank_range_km * _M_PER_KM
-    adj, nodes, ents, _ = _cut(net, part.node)
+    adj, nodes, ents, local = _cut(net, part.node)
     k_all = nodes.size
     nnz = ents.size
-    local = np.full(net.node_xy.shape[0], -1, dtype=np.int64)
-    local[nodes] = np.arange(k_all)
     src_local = local[part.node]
     cand = net.candidate_aki
     m = part.rows.size
@@ -957,11 +955,9 @@ def _partition_by_source(part: _SourceBatch, net: _Network) -> dict[str, Any]:
     r_m = params.tank_range_km * _M_PER_KM
     r_km = params.tank_range_km
     dilution = params.refill_dilution
-    adj, nodes, ents, keys = _cut(net, part.node)
+    adj, nodes, ents, local = _cut(net, part.node)
     k_all = nodes.size
     nnz = ents.size
-    local = np.full(net.node_xy.shape[0], -1, dtype=np.int64)
-    local[nodes] = np.arange(k_all)
     src_local = local[part.node]
     d_local = local[net.d_node]
     d_in = d_local >= 0
