@@ -238,7 +238,9 @@ class ExecutionConfig(_Frozen):
         4, ge=1, description="Zone-grid tiles per justified-zones partition."
     )
     reuse_unchanged_stages: bool = Field(
-        True, description="Skip a stage whose inputs, code and parameters are unchanged."
+        True,
+        description="Skip a stage whose inputs, code and parameters are unchanged (its "
+        "artefacts are stored under <out>/.stages; false: nothing is stored or reused).",
     )
 
     @model_validator(mode="after")

@@ -234,9 +234,10 @@ def run_stages(
                 f"may be damaged: copy or download it again ({' '.join(str(exc).split())})"
             ) from None
         artefacts[stage.name] = result
-        if stage.cacheable:
-            if key_file.exists():
-                key_file.unlink()
+        if key_file.exists():
+            key_file.unlink()  # a stored result of other inputs must not outlive this run
+        # With reuse off nothing would ever read the stored artefacts: none are written.
+        if stage.cacheable and config.execution.reuse_unchanged_stages:
             names = _save(stage_dir, result)
             stage_counts = {k: v for k, v in counts.items() if before.get(k) != v}
             write_text_atomic(

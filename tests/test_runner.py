@@ -87,3 +87,22 @@ def test_damaged_cache_is_recomputed(tmp_path):
     r = _run(tmp_path, cfg)
     assert "first" in CALLS
     assert r.artefacts["second"]["table"]["w"].iloc[0] == 1800.0
+
+
+def test_reuse_off_stores_nothing_and_drops_an_older_key(tmp_path):
+    _run(tmp_path, _cfg(tmp_path))
+    stages_dir = tmp_path / "out" / ".stages"
+    assert (stages_dir / "first" / "key.json").exists()
+    cfg = _cfg(tmp_path)
+    cfg = cfg.model_copy(
+        update={"execution": cfg.execution.model_copy(update={"reuse_unchanged_stages": False})}
+    )
+    CALLS.clear()
+    r = _run(tmp_path, cfg)
+    assert CALLS == ["first", "second"]
+    assert r.artefacts["second"]["table"]["w"].iloc[0] == 1800.0
+    assert not list(stages_dir.glob("*/key.json"))
+    # the next run with reuse on finds nothing to reuse
+    CALLS.clear()
+    _run(tmp_path, _cfg(tmp_path))
+    assert CALLS == ["first", "second"]
