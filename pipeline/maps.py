@@ -10,6 +10,7 @@ from typing import Any
 
 import geopandas as gpd
 import numpy as np
+import pandas as pd
 
 from pipeline.cautions import CAUTIONS
 from pipeline.hillshade import Basemap
@@ -93,6 +94,9 @@ def town_layer(towns: gpd.GeoDataFrame, visible: bool) -> MapLayer:
     )
 
 
+ROAD_RANK = ("aadt",)  # the roads a map keeps when it cannot draw them all: the busiest
+
+
 def busiest(
     gdf: gpd.GeoDataFrame | None, budget: int, by: tuple[str, ...]
 ) -> tuple[gpd.GeoDataFrame | None, int]:
@@ -105,13 +109,19 @@ def busiest(
     total = len(gdf)
     if total <= budget:
         return gdf, total
-    cols = [c for c in by if c in gdf.columns]
+    return gdf.iloc[top_positions(gdf, budget, by)], total
+
+
+def top_positions(frame: pd.DataFrame, budget: int, by: tuple[str, ...]) -> np.ndarray:
+    """Positions (ascending) of the ``budget`` largest rows of ``frame`` by the ``by`` columns
+    it has, in turn (NaN smallest, ties in row order); the first ``budget`` rows without any."""
+    total = len(frame)
+    cols = [c for c in by if c in frame.columns]
     if not cols:
-        return gdf.iloc[:budget], total
-    keys = [np.nan_to_num(gdf[c].to_numpy(float), nan=-np.inf) for c in reversed(cols)]
+        return np.arange(min(budget, total))
+    keys = [np.nan_to_num(frame[c].to_numpy(float), nan=-np.inf) for c in reversed(cols)]
     order = np.lexsort((np.arange(total), *(-k for k in keys)))
-    keep = np.sort(order[:budget])
-    return gdf.iloc[keep], total
+    return np.sort(order[:budget])
 
 
 def _shown(name: str, short: str, gdf: gpd.GeoDataFrame, total: int, what: str) -> str:
@@ -419,16 +429,23 @@ def public_texts(stations: gpd.GeoDataFrame, standard_aki: float = 87.0) -> gpd.
 
 
 def _read_optional(cfg):
+    """(busiest roads, road rows in the file, towns, fleet zones) of the run's inputs."""
     from pipeline import io
 
-    roads = io.read_vector(cfg.inputs.roads, what="roads") if cfg.inputs.roads else None
+    roads, road_total = (
+        io.read_vector_top(
+            cfg.inputs.roads, what="roads", budget=cfg.outputs.map_max_lines, by=ROAD_RANK
+        )
+        if cfg.inputs.roads
+        else (None, 0)
+    )
     towns = io.read_vector(cfg.inputs.towns, what="towns") if cfg.inputs.towns else None
     fz = (
         io.read_vector(cfg.inputs.fleet_zones, what="fleet zones")
         if cfg.inputs.fleet_zones
         else None
     )
-    return roads, towns, fz
+    return roads, road_total, towns, fz
 
 
 def _station_layer(stations, style, popup, name="Stations") -> MapLayer:
@@ -450,10 +467,9 @@ def audience_maps(
     ``map_public.html``, as specs for :func:`pipeline.webmap.build_map_html` (one builder,
     one look, cautions on each); the caller renders them, in parallel where it can."""
     cfg = ctx.config
-    roads, towns, fleet_zones = _read_optional(cfg)
+    roads, road_total, towns, fleet_zones = _read_optional(cfg)
     corridors = up.get("corridors", {}).get("corridors")
     budget = cfg.outputs.map_max_lines
-    roads, road_total = busiest(roads, budget, ("aadt",))
     corridors, corridor_total = busiest(
         corridors, budget, ("risk_l_aki_per_month", "flow_l_per_month")
     )

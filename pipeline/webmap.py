@@ -36,6 +36,7 @@ import html
 import json
 import math
 import re
+import secrets
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from functools import lru_cache
@@ -301,13 +302,22 @@ def format_value(value: Any) -> str:
 _LONE_SURROGATE = re.compile("[\ud800-\udfff]")
 
 
+@dataclass(frozen=True)
+class RawJSON:
+    """JSON text taken as is by :func:`json_for_script` (already valid JSON: no parse and
+    re-dump of large geometry arrays)."""
+
+    text: str
+
+
 def json_for_script(obj: Any) -> str:
     """JSON text that is safe to place inside an HTML ``<script>`` element.
 
     Parameters
     ----------
     obj : Any
-        JSON-serialisable data (no NaN: use None).
+        JSON-serialisable data (no NaN: use None); :class:`RawJSON` values are inserted as
+        their text.
 
     Returns
     -------
@@ -317,7 +327,22 @@ def json_for_script(obj: Any) -> str:
         the value is unchanged, while ``</script>``, ``<!--`` and line-separator tricks cannot
         end or alter the script element.
     """
-    text = json.dumps(obj, ensure_ascii=False, separators=(",", ":"), allow_nan=False)
+    raws: list[str] = []
+    token = secrets.token_hex(8)
+
+    def _raw(o: Any) -> str:
+        if not isinstance(o, RawJSON):
+            raise TypeError(f"{type(o).__name__} is not JSON serialisable")
+        raws.append(o.text)
+        return f"{token}:{len(raws) - 1}"
+
+    text = json.dumps(
+        obj, ensure_ascii=False, separators=(",", ":"), allow_nan=False, default=_raw
+    )
+    if raws:
+        pieces = re.split(f'"{token}:(\\d+)"', text)
+        pieces[1::2] = [raws[int(i)] for i in pieces[1::2]]
+        text = "".join(pieces)
     text = (
         text.replace("&", "\\u0026")
         .replace("<", "\\u003c")
@@ -881,6 +906,8 @@ def _prepare_layer(
     drawn = np.flatnonzero(has_geom)
     # Vertices rounded, never simplified: the shapes are those of the input.
     rounded = shapely.to_geojson(shapely.transform(geoms[drawn], lambda c: np.round(c, decimals)))
+    # GeoJSON text straight from GEOS: a geometry is never parsed into Python lists
+    dump = json.JSONEncoder(ensure_ascii=False, separators=(",", ":"), allow_nan=False).encode
     features = []
     for pos, geometry in zip(drawn.tolist(), rounded.tolist(), strict=True):
         props: dict[str, Any] = {"k": classes[pos], "p": [text[c][pos] for c in popup_cols]}
@@ -889,7 +916,7 @@ def _prepare_layer(
         if layer.searchable_fields:
             vals = [text[c][pos] for c in layer.searchable_fields]
             props["q"] = [v if v != _MISSING_TEXT else None for v in vals]
-        features.append({"type": "Feature", "geometry": json.loads(geometry), "properties": props})
+        features.append(f'{{"type":"Feature","geometry":{geometry},"properties":{dump(props)}}}')
 
     note = None
     if n_missing:
@@ -903,7 +930,9 @@ def _prepare_layer(
         "size": base_size,
         "fillOpacity": float(layer.fill_opacity),
         "fields": [lab for _, lab in layer.popup_fields],
-        "features": {"type": "FeatureCollection", "features": features},
+        "features": RawJSON(
+            '{"type":"FeatureCollection","features":[' + ",".join(features) + "]}"
+        ),
     }
     legend = {
         "title": layer.name,

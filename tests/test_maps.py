@@ -8,8 +8,11 @@ from __future__ import annotations
 
 import geopandas as gpd
 import numpy as np
+import pandas as pd
+import pytest
 from shapely.geometry import LineString
 
+from pipeline.io import read_vector, read_vector_top
 from pipeline.maps import busiest, corridor_layer, road_layer
 
 
@@ -47,3 +50,34 @@ def test_thinned_layers_say_how_many_they_show():
     kc, tc = busiest(c, 10, ("risk_l_aki_per_month", "flow_l_per_month"))
     assert corridor_layer(kc, tc).name == "Corridors (riskiest 10 of 30)"
     assert kc["risk_l_aki_per_month"].min() == 20.0
+
+
+@pytest.mark.parametrize("driver,suffix", [("GPKG", ".gpkg"), ("ESRI Shapefile", ".shp")])
+@pytest.mark.parametrize("budget", [1, 7, 40, 100])
+def test_reading_only_the_busiest_rows_matches_thinning_the_whole_file(
+    tmp_path, driver, suffix, budget
+):
+    # the file read back by GDAL is the reference: same rows, same order, same attributes
+    rng = np.random.default_rng(5)
+    aadt = rng.choice([np.nan, 10.0, 250.0, 4000.0], size=60)  # many ties and gaps
+    g = lines({"aadt": aadt, "road_class": [f"c{i % 4}" for i in range(60)]})
+    path = tmp_path / f"roads{suffix}"
+    g.to_file(path, driver=driver)
+    expect, total = busiest(read_vector(path, what="roads"), budget, ("aadt",))
+    got, got_total = read_vector_top(path, what="roads", budget=budget, by=("aadt",))
+    assert got_total == total == 60
+    assert got.crs == expect.crs
+    pd.testing.assert_frame_equal(
+        pd.DataFrame(got.drop(columns="geometry")),
+        pd.DataFrame(expect.drop(columns="geometry")).reset_index(drop=True),
+    )
+    assert got.geometry.geom_equals_exact(
+        expect.geometry.reset_index(drop=True), tolerance=0
+    ).all()
+
+
+def test_reading_the_busiest_rows_without_the_ranking_column_keeps_the_first(tmp_path):
+    g = lines({"road_class": [f"c{i}" for i in range(9)]})
+    g.to_file(tmp_path / "r.gpkg")
+    got, total = read_vector_top(tmp_path / "r.gpkg", what="roads", budget=4, by=("aadt",))
+    assert total == 9 and got["road_class"].tolist() == ["c0", "c1", "c2", "c3"]

@@ -30,6 +30,7 @@ from pipeline.webmap import (
     MapBuildError,
     MapLayer,
     MapSpec,
+    RawJSON,
     RampStyle,
     _leaflet_assets,
     build_map_html,
@@ -239,6 +240,20 @@ def test_json_for_script_escapes_and_round_trips():
     for ch in "<>&\u2028\u2029\ud800":
         assert ch not in text
     assert json.loads(text) == value
+
+
+def test_json_for_script_inserts_raw_json_and_escapes_it_too():
+    # reference: the standard library's json parser reads back the whole document
+    inner = {"type": "Point", "coordinates": [1.5, -2.25], "s": f"{SCRIPT_PAYLOAD}&\u2028"}
+    value = {"a": RawJSON(json.dumps(inner, ensure_ascii=False)), "b": ["x", RawJSON("[1,2]")]}
+    text = json_for_script(value)
+    for ch in "<>&\u2028":
+        assert ch not in text
+    assert json.loads(text) == {"a": inner, "b": ["x", [1, 2]]}
+    # a plain string that looks like a placeholder stays a string
+    assert json.loads(json_for_script({"a": RawJSON("1"), "b": '"0:0"'})) == {"a": 1, "b": '"0:0"'}
+    with pytest.raises(TypeError):
+        json_for_script({"x": object()})
 
 
 def test_json_for_script_rejects_nan():
