@@ -686,7 +686,9 @@ def read_vector_top(
     if total <= budget:
         return read_vector(path, what=what, layer=name), total
     keep = top_positions(attrs, budget, by)
-    gdf, _notes = _read_frame(path, name, what, fids=attrs.index.to_numpy()[keep], fid_as_index=True)
+    gdf, _notes = _read_frame(
+        path, name, what, fids=attrs.index.to_numpy()[keep], fid_as_index=True
+    )
     if not isinstance(gdf, gpd.GeoDataFrame) or gdf.crs is None:
         raise InputFileError(f"{path}: the {what} layer has no geometry or no CRS")
     # the driver may hand the features back in any order: restore the file's

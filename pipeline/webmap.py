@@ -336,9 +336,7 @@ def json_for_script(obj: Any) -> str:
         raws.append(o.text)
         return f"{token}:{len(raws) - 1}"
 
-    text = json.dumps(
-        obj, ensure_ascii=False, separators=(",", ":"), allow_nan=False, default=_raw
-    )
+    text = json.dumps(obj, ensure_ascii=False, separators=(",", ":"), allow_nan=False, default=_raw)
     if raws:
         pieces = re.split(f'"{token}:(\\d+)"', text)
         pieces[1::2] = [raws[int(i)] for i in pieces[1::2]]
@@ -930,9 +928,7 @@ def _prepare_layer(
         "size": base_size,
         "fillOpacity": float(layer.fill_opacity),
         "fields": [lab for _, lab in layer.popup_fields],
-        "features": RawJSON(
-            '{"type":"FeatureCollection","features":[' + ",".join(features) + "]}"
-        ),
+        "features": RawJSON('{"type":"FeatureCollection","features":[' + ",".join(features) + "]}"),
     }
     legend = {
         "title": layer.name,

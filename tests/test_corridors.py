@@ -139,8 +139,12 @@ def _networkx_flows(graph, sources, dests, params):
     delivered = []
     for s, vol in zip(sources["node"], sources["volume_l"], strict=True):
         dist, paths = nx.single_source_dijkstra(ref, int(s), cutoff=r_m, weight="weight")
-        g = np.array([w * np.exp(-dist[j] / 1000 / params.decay_km) if j in dist else 0.0
-                      for j, w in zip(dests["node"], dests["weight"], strict=True)])
+        g = np.array(
+            [
+                w * np.exp(-dist[j] / 1000 / params.decay_km) if j in dist else 0.0
+                for j, w in zip(dests["node"], dests["weight"], strict=True)
+            ]
+        )
         q = vol * g / g.sum()
         delivered.append(q.sum())
         for j, qj in zip(dests["node"], q, strict=True):
@@ -164,11 +168,16 @@ def test_flows_equal_networkx_paths_walked_per_destination(seed, root):
     sources = pd.DataFrame({"node": srcs, "volume_l": rng.uniform(1e3, 1e4, 4), "aki": 85.0})
     dests = pd.DataFrame({"node": dsts, "weight": rng.uniform(100, 5000, 8)})
     params = co.CorridorParams(tank_range_km=1e4)  # everything within range
-    res = co.compute_corridors(graph, flat_profiles(graph), sources, dests, toy_requirement,
-                               params, tree_root=root)
+    res = co.compute_corridors(
+        graph, flat_profiles(graph), sources, dests, toy_requirement, params, tree_root=root
+    )
     expect, delivered = _networkx_flows(graph, sources, dests, params)
-    got = {(int(a), int(b)): f for a, b, f in zip(res.edges["from_node"], res.edges["to_node"],
-                                                  res.edges["flow_l_per_month"], strict=True)}
+    got = {
+        (int(a), int(b)): f
+        for a, b, f in zip(
+            res.edges["from_node"], res.edges["to_node"], res.edges["flow_l_per_month"], strict=True
+        )
+    }
     assert set(got) == set(expect)
     for key, f in expect.items():
         assert got[key] == pytest.approx(f, rel=1e-9)
@@ -192,15 +201,17 @@ def test_flows_are_conserved_per_source(seed, root):
     st.loc[0, "node"] = -1
     st.loc[0, "aki"] = 85.0
     params = co.CorridorParams(tank_range_km=25.0, decay_km=20.0)
-    res = co.compute_corridors(graph, flat_profiles(graph), st, None, toy_requirement, params,
-                               tree_root=root)
+    res = co.compute_corridors(
+        graph, flat_profiles(graph), st, None, toy_requirement, params, tree_root=root
+    )
     s = res.stations
     src = s["status"] == "source"
     assert src.sum() >= 3
     assert (s.loc[src, "beyond_range_l_per_month"] > 0).any()
     np.testing.assert_allclose(
         s.loc[src, "delivered_l_per_month"] + s.loc[src, "beyond_range_l_per_month"],
-        s.loc[src, "sent_l_per_month"], rtol=1e-9,
+        s.loc[src, "sent_l_per_month"],
+        rtol=1e-9,
     )
     np.testing.assert_allclose(s.loc[src, "sent_l_per_month"], s.loc[src, "volume_l_per_month"])
     assert s.loc[0, "status"] == "not_snapped"
@@ -213,15 +224,27 @@ def test_a_large_unreachable_part_of_the_graph_changes_nothing():
     """The same network alone and beside a bigger disconnected one (of which no node is ever
     reached)."""
     graph, rng = random_graph(4, n=40, m=120)
-    far = rg.graph_from_edges(np.c_[np.arange(100) * 1000.0 + 1e6, np.zeros(100)],
-                              np.arange(99), np.arange(1, 100), crs=UTM)
+    far = rg.graph_from_edges(
+        np.c_[np.arange(100) * 1000.0 + 1e6, np.zeros(100)],
+        np.arange(99),
+        np.arange(1, 100),
+        crs=UTM,
+    )
     both = rg.graph_from_edges(
-        np.r_[graph.node_xy, far.node_xy], np.r_[graph.u, far.u + 40],
-        np.r_[graph.v, far.v + 40], np.r_[graph.length_m, far.length_m], crs=UTM,
+        np.r_[graph.node_xy, far.node_xy],
+        np.r_[graph.u, far.u + 40],
+        np.r_[graph.v, far.v + 40],
+        np.r_[graph.length_m, far.length_m],
+        crs=UTM,
         oneway=np.r_[graph.attributes["oneway"], np.zeros(99, bool)],
     )
-    st = pd.DataFrame({"node": rng.choice(40, 8, replace=False),
-                       "volume_l": rng.uniform(1e3, 1e4, 8), "aki": 85.0})
+    st = pd.DataFrame(
+        {
+            "node": rng.choice(40, 8, replace=False),
+            "volume_l": rng.uniform(1e3, 1e4, 8),
+            "aki": 85.0,
+        }
+    )
     params = co.CorridorParams(tank_range_km=60.0)
     a = co.compute_corridors(graph, flat_profiles(graph), st, None, toy_requirement, params)
     b = co.compute_corridors(both, flat_profiles(both), st, None, toy_requirement, params)
@@ -239,10 +262,11 @@ def test_gravity_split_follows_the_decay_models(root):
     dests = pd.DataFrame({"node": [0, 7], "weight": [300.0, 900.0]})
     for params, f in [
         (co.CorridorParams(decay_km=40.0), lambda d: np.exp(-d / 40.0)),
-        (co.CorridorParams(decay_model="power", decay_exponent=1.5), lambda d: d ** -1.5),
+        (co.CorridorParams(decay_model="power", decay_exponent=1.5), lambda d: d**-1.5),
     ]:
-        res = co.compute_corridors(g, flat_profiles(g), sources, dests, toy_requirement, params,
-                                   tree_root=root)
+        res = co.compute_corridors(
+            g, flat_profiles(g), sources, dests, toy_requirement, params, tree_root=root
+        )
         e = res.edges.set_index(["from_node", "to_node"])["flow_l_per_month"]
         qw, qe = e[(2, 1)], e[(2, 3)]
         assert qw / qe == pytest.approx(300 * f(20.0) / (900 * f(50.0)), rel=1e-12)
@@ -252,8 +276,9 @@ def test_gravity_split_follows_the_decay_models(root):
 @pytest.mark.parametrize("root", ROOTS)
 def test_own_station_is_not_a_destination(root):
     g = line_graph(3, 10_000.0)
-    st = pd.DataFrame({"node": [0, 0, 2], "volume_l": [1000.0, 5000.0, 1000.0],
-                       "aki": [85.0, 87.0, 87.0]})
+    st = pd.DataFrame(
+        {"node": [0, 0, 2], "volume_l": [1000.0, 5000.0, 1000.0], "aki": [85.0, 87.0, 87.0]}
+    )
     res = co.compute_corridors(g, flat_profiles(g), st, None, toy_requirement, tree_root=root)
     # station 0 sends to station 1 (same node, d = 0) and station 2 (20 km), not to itself
     w1, w2 = 5000.0, 1000.0 * np.exp(-20.0 / co.CorridorParams().decay_km)
@@ -277,10 +302,13 @@ def test_export_risk_and_deficit_share_match_the_closed_form(root):
     v, r, aki = 4000.0, 500.0, 85.0
     sources = pd.DataFrame({"node": [0], "volume_l": [v], "aki": [aki]})
     dests = pd.DataFrame({"node": [20], "weight": [1.0]})
-    res = co.compute_corridors(g, prof, sources, dests, toy_requirement,
-                               co.CorridorParams(tank_range_km=r), tree_root=root)
+    res = co.compute_corridors(
+        g, prof, sources, dests, toy_requirement, co.CorridorParams(tank_range_km=r), tree_root=root
+    )
+
     def integral(a, b):
         return (b - a) - (b * b - a * a) / (2 * r)
+
     delta = toy_requirement(0.0, 0.0, 0.0) - aki
     vd_all = v * integral(0, 200)
     vd_low = v * integral(100, 200)
@@ -302,8 +330,7 @@ def test_long_edge_down_a_grade_is_scored_on_its_low_part(root):
     D = (3.5 + 3.5 + 0.643)/5 (hand computation); at the mean elevation D would be 0.07."""
     g = line_graph(2, 50_000.0)
     prof = flat_profiles(g, elevation_m=1200.0)
-    for c, z in zip(rg.PROFILE_QUANTILE_COLUMNS, [0.0, 0.0, 1000.0, 2000.0, 3000.0],
-                    strict=True):
+    for c, z in zip(rg.PROFILE_QUANTILE_COLUMNS, [0.0, 0.0, 1000.0, 2000.0, 3000.0], strict=True):
         prof[c] = z
     sources = pd.DataFrame({"node": [0], "volume_l": [1000.0], "aki": [85.0]})
     dests = pd.DataFrame({"node": [1], "weight": [1.0]})
@@ -311,8 +338,15 @@ def test_long_edge_down_a_grade_is_scored_on_its_low_part(root):
     expect = (3.5 + 3.5 + (88.5 - 1000 / 350 - 85.0)) / 5
     assert res.edges["deficit_aki"].iloc[0] == pytest.approx(expect, rel=1e-12)
     assert res.stations["fuel_share_in_deficit"].iloc[0] == pytest.approx(0.6, rel=1e-12)
-    mean = co.compute_corridors(g, prof, sources, dests, toy_requirement,
-                                co.CorridorParams(requirement_elevation="mean"), tree_root=root)
+    mean = co.compute_corridors(
+        g,
+        prof,
+        sources,
+        dests,
+        toy_requirement,
+        co.CorridorParams(requirement_elevation="mean"),
+        tree_root=root,
+    )
     assert mean.edges["deficit_aki"].iloc[0] == pytest.approx(88.5 - 1200 / 350 - 85.0)
 
 
@@ -323,18 +357,25 @@ def test_refill_dilution_blends_the_tank_towards_local_fuel():
     sources = pd.DataFrame({"node": [0], "volume_l": [1000.0], "aki": [85.0]})
     dests = pd.DataFrame({"node": [2], "weight": [1.0]})
     res = co.compute_corridors(
-        g, flat_profiles(g), sources, dests, toy_requirement,
+        g,
+        flat_profiles(g),
+        sources,
+        dests,
+        toy_requirement,
         co.CorridorParams(tank_range_km=600.0, refill_dilution=1.0),
         local_aki=np.array([87.0, 87.0]),
     )
     e = res.edges.set_index("edge")
     share = 1 - 375.0 / 600.0  # midpoint of the second edge
     assert e.loc[1, "tank_aki"] == pytest.approx(share * 85 + (1 - share) * 87, rel=1e-12)
-    none = co.compute_corridors(g, flat_profiles(g), sources, dests, toy_requirement,
-                                co.CorridorParams(tank_range_km=600.0))
+    none = co.compute_corridors(
+        g, flat_profiles(g), sources, dests, toy_requirement, co.CorridorParams(tank_range_km=600.0)
+    )
     assert none.edges.set_index("edge").loc[1, "tank_aki"] == 85.0
-    assert (none.stations["export_risk_l_aki_per_month"].iloc[0]
-            > res.stations["export_risk_l_aki_per_month"].iloc[0])
+    assert (
+        none.stations["export_risk_l_aki_per_month"].iloc[0]
+        > res.stations["export_risk_l_aki_per_month"].iloc[0]
+    )
 
 
 @pytest.mark.parametrize("root", ROOTS)
@@ -354,9 +395,13 @@ def test_corridor_lines_merge_directions(root):
 def test_profiles_of_another_graph_are_refused():
     g = line_graph(4, 1000.0)
     with pytest.raises(co.CorridorError):
-        co.compute_corridors(g, flat_profiles(line_graph(3, 1000.0)),
-                             pd.DataFrame({"node": [0], "volume_l": [1.0], "aki": [85.0]}),
-                             None, toy_requirement)
+        co.compute_corridors(
+            g,
+            flat_profiles(line_graph(3, 1000.0)),
+            pd.DataFrame({"node": [0], "volume_l": [1.0], "aki": [85.0]}),
+            None,
+            toy_requirement,
+        )
 
 
 # ----------------------------------------------------------------------------------------------
@@ -366,9 +411,19 @@ def test_profiles_of_another_graph_are_refused():
 
 def _write_dem(path, z, cell_m):
     with rasterio.open(
-        path, "w", driver="GTiff", width=z.shape[1], height=z.shape[0], count=1,
-        dtype="float32", crs=UTM, transform=from_origin(X0, Y0, cell_m, cell_m),
-        nodata=-9999.0, tiled=True, blockxsize=32, blockysize=32,
+        path,
+        "w",
+        driver="GTiff",
+        width=z.shape[1],
+        height=z.shape[0],
+        count=1,
+        dtype="float32",
+        crs=UTM,
+        transform=from_origin(X0, Y0, cell_m, cell_m),
+        nodata=-9999.0,
+        tiled=True,
+        blockxsize=32,
+        blockysize=32,
     ) as ds:
         ds.write(z.astype("float32"), 1)
     return path
@@ -411,8 +466,17 @@ def plateau_and_plain():
 
 def test_station_above_a_descent_exports_far_more_risk(tmp_path, plateau_and_plain):
     dem, cell, lines, stations, towns = plateau_and_plain
-    _, _, res = _run(tmp_path, dem, cell, lines, stations, [85.0, 85.0], towns,
-                     [5000, 3000, 20000], toy_requirement)
+    _, _, res = _run(
+        tmp_path,
+        dem,
+        cell,
+        lines,
+        stations,
+        [85.0, 85.0],
+        towns,
+        [5000, 3000, 20000],
+        toy_requirement,
+    )
     risk = res.stations["export_risk_l_aki_per_month"].to_numpy()
     assert risk[1] > 0
     assert risk[0] < 0.05 * risk[1]
@@ -423,8 +487,17 @@ def test_station_above_a_descent_exports_far_more_risk(tmp_path, plateau_and_pla
 
 def test_raising_the_fuel_to_the_standard_removes_its_corridor(tmp_path, plateau_and_plain):
     dem, cell, lines, stations, towns = plateau_and_plain
-    graph, _, res = _run(tmp_path, dem, cell, lines, stations, [85.0, 87.0], towns,
-                         [5000, 3000, 20000], toy_requirement)
+    graph, _, res = _run(
+        tmp_path,
+        dem,
+        cell,
+        lines,
+        stations,
+        [85.0, 87.0],
+        towns,
+        [5000, 3000, 20000],
+        toy_requirement,
+    )
     st = res.stations.iloc[1]
     assert st["export_risk_l_aki_per_month"] == 0.0
     assert st["sent_l_per_month"] == 0.0 and st["status"] == "meets_standard"
@@ -432,8 +505,17 @@ def test_raising_the_fuel_to_the_standard_removes_its_corridor(tmp_path, plateau
     comp_b = graph.component[rg.snap_points(graph, np.array([stations[1]]), 200.0)[0][0]]
     assert not (graph.component[lines_out["u"].to_numpy()] == comp_b).any()
     # with both at the standard there is no corridor at all
-    graph, _, res = _run(tmp_path, dem, cell, lines, stations, [87.0, 87.0], towns,
-                         [5000, 3000, 20000], toy_requirement)
+    graph, _, res = _run(
+        tmp_path,
+        dem,
+        cell,
+        lines,
+        stations,
+        [87.0, 87.0],
+        towns,
+        [5000, 3000, 20000],
+        toy_requirement,
+    )
     assert len(co.corridor_lines(graph, res)) == 0
     assert res.stations["export_risk_l_aki_per_month"].sum() == 0.0
 
@@ -450,8 +532,9 @@ def test_a_climb_low_down_scores_above_the_same_climb_high_up(tmp_path, requirem
     lines = [LineString([(X0 + 500, y), (X0 + 2500, y), (X0 + 4500, y)]) for y in (y_hi, y_lo)]
     stations = [(X0 + 500, y_hi), (X0 + 500, y_lo)]
     towns = [(X0 + 4500, y_hi), (X0 + 4500, y_lo)]
-    graph, prof, res = _run(tmp_path, dem, cell, lines, stations, [85.0, 85.0], towns,
-                            [1000, 1000], requirement)
+    graph, prof, res = _run(
+        tmp_path, dem, cell, lines, stations, [85.0, 85.0], towns, [1000, 1000], requirement
+    )
     up = np.r_[prof["climb_forward_m"], prof["climb_reverse_m"]].max()
     # each road is one 4 km edge climbing 240 m; bilinear sampling rounds off the ramp's kinks
     assert up == pytest.approx(240.0, abs=5.0)
@@ -497,33 +580,44 @@ def test_destination_trees_give_the_sums_of_source_trees(seed):
         prof[c] = elev + 150.0 * (k - 2)
     prof.loc[prof.index[:3], "elevation_p50_m"] = np.nan  # unknown requirement on 3 edges
     ns = 16
-    st = pd.DataFrame({
-        "node": rng.choice(graph.n_nodes, ns, replace=True),
-        "volume_l": rng.uniform(1e3, 1e5, ns),
-        "aki": rng.choice([85.0, 85.5, 86.0, 88.0], ns),
-        "id": [f"s{i}" for i in range(ns)],
-    })
+    st = pd.DataFrame(
+        {
+            "node": rng.choice(graph.n_nodes, ns, replace=True),
+            "volume_l": rng.uniform(1e3, 1e5, ns),
+            "aki": rng.choice([85.0, 85.5, 86.0, 88.0], ns),
+            "id": [f"s{i}" for i in range(ns)],
+        }
+    )
     st.loc[0, "node"] = -1
-    towns = pd.DataFrame({
-        "node": np.r_[rng.choice(graph.n_nodes, 5), st["node"].iloc[3], st["node"].iloc[3]],
-        "weight": rng.uniform(1e3, 1e4, 7),
-        "id": ["t0", "t1", "t2", "t3", "t4", "s3", "t6"],
-    })
-    params = co.CorridorParams(tank_range_km=45.0, decay_km=20.0,
-                               decay_model="power" if seed % 2 else "exponential")
+    towns = pd.DataFrame(
+        {
+            "node": np.r_[rng.choice(graph.n_nodes, 5), st["node"].iloc[3], st["node"].iloc[3]],
+            "weight": rng.uniform(1e3, 1e4, 7),
+            "id": ["t0", "t1", "t2", "t3", "t4", "s3", "t6"],
+        }
+    )
+    params = co.CorridorParams(
+        tank_range_km=45.0, decay_km=20.0, decay_model="power" if seed % 2 else "exponential"
+    )
     loaded, beyond = 0, False
     for dests in (towns, None):
         kw = {"candidate_aki": np.arange(80.0, 87.0, 0.5), "sources_per_partition": 5}
-        a = co.compute_corridors(graph, prof, st, dests, toy_requirement, params,
-                                 tree_root="sources", **kw)
-        b = co.compute_corridors(graph, prof, st, dests, toy_requirement, params,
-                                 tree_root="destinations", **kw)
+        a = co.compute_corridors(
+            graph, prof, st, dests, toy_requirement, params, tree_root="sources", **kw
+        )
+        b = co.compute_corridors(
+            graph, prof, st, dests, toy_requirement, params, tree_root="destinations", **kw
+        )
         assert a.summary["tree_root"] == "sources" and b.summary["tree_root"] == "destinations"
-        _frames_close(a.stations.drop(columns="nodes_reached").reset_index(),
-                      b.stations.drop(columns="nodes_reached").reset_index(), ["index"])
+        _frames_close(
+            a.stations.drop(columns="nodes_reached").reset_index(),
+            b.stations.drop(columns="nodes_reached").reset_index(),
+            ["index"],
+        )
         _frames_close(a.edges, b.edges, ["edge", "direction"])
-        np.testing.assert_allclose(a.candidate_share_in_deficit, b.candidate_share_in_deficit,
-                                   rtol=1e-9, atol=1e-12)
+        np.testing.assert_allclose(
+            a.candidate_share_in_deficit, b.candidate_share_in_deficit, rtol=1e-9, atol=1e-12
+        )
         assert (b.stations["nodes_reached"] == 0).all()
         loaded += len(a.edges)
         beyond |= bool((a.stations["beyond_range_l_per_month"] > 0).any())

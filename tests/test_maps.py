@@ -71,9 +71,7 @@ def test_reading_only_the_busiest_rows_matches_thinning_the_whole_file(
         pd.DataFrame(got.drop(columns="geometry")),
         pd.DataFrame(expect.drop(columns="geometry")).reset_index(drop=True),
     )
-    assert got.geometry.geom_equals_exact(
-        expect.geometry.reset_index(drop=True), tolerance=0
-    ).all()
+    assert got.geometry.geom_equals_exact(expect.geometry.reset_index(drop=True), tolerance=0).all()
 
 
 def test_reading_the_busiest_rows_without_the_ranking_column_keeps_the_first(tmp_path):

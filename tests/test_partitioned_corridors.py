@@ -234,4 +234,4 @@ def test_requirement_function_solves_each_elevation_and_load_once(tmp_path):
     want = np.asarray(rq.justified_aki(mix, cfg.fleet, cond).aki, dtype=float)
     np.testing.assert_array_equal(got, want)
     assert np.isnan(got[-1]) and np.isfinite(got[:-1]).all()
-    assert (got[n:n + 200:2] < got[n + 1:n + 200:2]).all()  # the climb load raises it
+    assert (got[n : n + 200 : 2] < got[n + 1 : n + 200 : 2]).all()  # the climb load raises it

@@ -33,9 +33,19 @@ def _dem(tmp_path, z, cell_m, *, name="dem.tif", nodata=-9999.0, crs=UTM, x0=X0,
     path = tmp_path / name
     z = np.asarray(z, dtype="float32")
     with rasterio.open(
-        path, "w", driver="GTiff", width=z.shape[1], height=z.shape[0], count=1,
-        dtype="float32", crs=crs, transform=from_origin(x0, y0, cell_m, cell_m),
-        nodata=nodata, tiled=True, blockxsize=16, blockysize=16,
+        path,
+        "w",
+        driver="GTiff",
+        width=z.shape[1],
+        height=z.shape[0],
+        count=1,
+        dtype="float32",
+        crs=crs,
+        transform=from_origin(x0, y0, cell_m, cell_m),
+        nodata=nodata,
+        tiled=True,
+        blockxsize=16,
+        blockysize=16,
     ) as ds:
         ds.write(z, 1)
     return path
@@ -60,8 +70,9 @@ def test_two_crossing_lines_become_four_edges_with_a_shared_node():
     assert g.stats["components"] == 1
 
 
-@pytest.mark.parametrize(("column", "value"), [("bridge", True), ("is_bridge", "yes"),
-                                               ("BRIDGE", 1)])
+@pytest.mark.parametrize(
+    ("column", "value"), [("bridge", True), ("is_bridge", "yes"), ("BRIDGE", 1)]
+)
 def test_crossing_a_bridge_is_not_noded(column, value):
     g = rg.build_road_graph(
         _gdf(
@@ -127,9 +138,15 @@ def test_multilinestring_parts_and_components():
     assert g.stats["largest_component_nodes"] == 3
 
 
-@pytest.mark.parametrize(("column", "value", "forward_only"), [
-    ("oneway", True, True), ("one_way", "yes", True), ("oneway", -1, False), ("oneway", "no", None),
-])
+@pytest.mark.parametrize(
+    ("column", "value", "forward_only"),
+    [
+        ("oneway", True, True),
+        ("one_way", "yes", True),
+        ("oneway", -1, False),
+        ("oneway", "no", None),
+    ],
+)
 def test_oneway_variants(column, value, forward_only):
     g = rg.build_road_graph(_gdf([LineString([(0, 0), (100, 0)])], **{column: [value]}))
     a = g.adjacency.toarray()
@@ -165,9 +182,7 @@ def test_input_without_crs_is_refused():
 
 def test_geographic_input_gets_the_utm_zone_of_the_data():
     # SCHEMA.md: the demo region (about 40.6 N, 137.4 W) lies in UTM zone 8N, EPSG:32608.
-    g = rg.build_road_graph(
-        _gdf([LineString([(-137.4, 40.6), (-137.3, 40.65)])], crs="EPSG:4326")
-    )
+    g = rg.build_road_graph(_gdf([LineString([(-137.4, 40.6), (-137.3, 40.65)])], crs="EPSG:4326"))
     assert g.crs == CRS.from_epsg(32608)
 
 
@@ -186,12 +201,15 @@ def test_geodesic_edge_lengths_match_pyproj_geometry_length():
     lines = []
     for lat in (-33.0, 5.0, 40.6, 61.0):  # separate lines, far apart: no noding between them
         lon0 = -137.0 + rng.uniform(-1, 1)
-        pts = np.c_[lon0 + np.cumsum(rng.uniform(0.005, 0.05, 6)),
-                    lat + np.cumsum(rng.uniform(-0.02, 0.02, 6))]
+        pts = np.c_[
+            lon0 + np.cumsum(rng.uniform(0.005, 0.05, 6)),
+            lat + np.cumsum(rng.uniform(-0.02, 0.02, 6)),
+        ]
         lines.append(LineString(pts))
     for lat in (-33.0, 5.0, 40.6, 61.0):
-        g = rg.build_road_graph(_gdf([ln for ln in lines if abs(ln.coords[0][1] - lat) < 1],
-                                     crs="EPSG:4326"))
+        g = rg.build_road_graph(
+            _gdf([ln for ln in lines if abs(ln.coords[0][1] - lat) < 1], crs="EPSG:4326")
+        )
         ref = [geod.geometry_length(ln) for ln in lines if abs(ln.coords[0][1] - lat) < 1]
         assert g.length_method == "geodesic_wgs84"
         np.testing.assert_allclose(g.length_m, ref, rtol=1e-8)
@@ -201,8 +219,10 @@ def test_noded_geographic_lines_keep_their_geodesic_total():
     """Cutting two crossing lon/lat lines keeps Σ length = Σ Geod.geometry_length (the
     crossing is placed in UTM; the total may grow by the offset from the geodesic only)."""
     geod = Geod(ellps="WGS84")
-    lines = [LineString([(-137.5, 40.5), (-137.2, 40.7)]),
-             LineString([(-137.5, 40.7), (-137.2, 40.5)])]
+    lines = [
+        LineString([(-137.5, 40.5), (-137.2, 40.7)]),
+        LineString([(-137.5, 40.7), (-137.2, 40.5)]),
+    ]
     g = rg.build_road_graph(_gdf(lines, crs="EPSG:4326"))
     assert g.n_edges == 4
     ref = sum(geod.geometry_length(ln) for ln in lines)
@@ -335,8 +355,9 @@ def test_entry_index_finds_every_stored_entry_and_nothing_else():
     n = 30
     u, v = rng.integers(0, n, 90), rng.integers(0, n, 90)
     keep = u != v
-    g = rg.graph_from_edges(rng.uniform(0, 1000, (n, 2)), u[keep], v[keep], crs=UTM,
-                            oneway=rng.random(keep.sum()) < 0.3)
+    g = rg.graph_from_edges(
+        rng.uniform(0, 1000, (n, 2)), u[keep], v[keep], crs=UTM, oneway=rng.random(keep.sum()) < 0.3
+    )
     dense = g.adjacency.toarray()
     ti, hi = np.meshgrid(np.arange(n), np.arange(n), indexing="ij")
     pos = g.entry_index(ti.ravel(), hi.ravel())
@@ -346,8 +367,9 @@ def test_entry_index_finds_every_stored_entry_and_nothing_else():
 
 
 def test_parallel_edges_keep_the_shortest_in_the_adjacency():
-    g = rg.graph_from_edges([[0, 0], [100, 0]], [0, 0, 1], [1, 1, 0], [150.0, 120.0, 130.0],
-                            crs=UTM)
+    g = rg.graph_from_edges(
+        [[0, 0], [100, 0]], [0, 0, 1], [1, 1, 0], [150.0, 120.0, 130.0], crs=UTM
+    )
     assert g.adjacency[0, 1] == 120.0 and g.adjacency[1, 0] == 120.0
     assert g.entry_edge[g.entry_index([0], [1])[0]] == 1
     assert g.stats["parallel_entries_dropped"] == 4
@@ -367,8 +389,10 @@ def test_profile_of_a_planar_slope_is_analytic(tmp_path):
     z = np.tile(1000.0 + 0.05 * (xc - X0), (rows, 1))
     path = _dem(tmp_path, z, cell)
     y = Y0 - 500.0
-    lines = [LineString([(X0 + 200, y), (X0 + 1200, y), (X0 + 2200, y)]),  # east, up
-             LineString([(X0 + 2200, y), (X0 + 2200, y - 400)])]  # south along a contour
+    lines = [
+        LineString([(X0 + 200, y), (X0 + 1200, y), (X0 + 2200, y)]),  # east, up
+        LineString([(X0 + 2200, y), (X0 + 2200, y - 400)]),
+    ]  # south along a contour
     g = rg.build_road_graph(_gdf(lines))
     with rasterio.open(path) as ds:
         prof = rg.edge_profiles(g, ds, climb_grade_threshold_pct=4.0)
@@ -401,8 +425,9 @@ def test_sustained_climb_tolerates_short_dips_only(tmp_path, flat_m, expected_m)
     climb of 2100 m rising 120 m; a 400 m flat splits it into two 1000 m climbs."""
     cell = 50.0
     s = np.arange(0, 2600, cell)  # distance of each cell centre from the first centre
-    zz = np.where(s <= 1000, 0.06 * s, np.where(s <= 1000 + flat_m, 60.0,
-                  60.0 + 0.06 * (s - 1000 - flat_m)))
+    zz = np.where(
+        s <= 1000, 0.06 * s, np.where(s <= 1000 + flat_m, 60.0, 60.0 + 0.06 * (s - 1000 - flat_m))
+    )
     zz = np.minimum(zz, 120.0)
     z = np.tile(500.0 + zz, (10, 1))
     path = _dem(tmp_path, z, cell)
@@ -416,15 +441,22 @@ def test_sustained_climb_tolerates_short_dips_only(tmp_path, flat_m, expected_m)
     up = "forward" if fwd else "reverse"
     assert prof.loc[0, f"sustained_length_{up}_m"] == pytest.approx(expected_m, abs=1e-6)
     assert prof.loc[0, f"sustained_climb_{up}_m"] == pytest.approx(
-        120.0 if expected_m > 2000 else 60.0, abs=1e-3)
+        120.0 if expected_m > 2000 else 60.0, abs=1e-3
+    )
     assert prof.attrs["dip_tolerance_m"] == pytest.approx(100.0)
 
 
 def test_profile_outside_the_dem_gives_nan_and_partial_share(tmp_path):
     path = _dem(tmp_path, np.full((10, 10), 700.0), 100.0)
     y = Y0 - 500.0
-    g = rg.build_road_graph(_gdf([LineString([(X0 + 500, y), (X0 + 1500, y)]),
-                                  LineString([(X0 + 5000, y), (X0 + 6000, y)])]))
+    g = rg.build_road_graph(
+        _gdf(
+            [
+                LineString([(X0 + 500, y), (X0 + 1500, y)]),
+                LineString([(X0 + 5000, y), (X0 + 6000, y)]),
+            ]
+        )
+    )
     with rasterio.open(path) as ds:
         prof = rg.edge_profiles(g, ds)
     inside = int(np.argmin(g.node_xy[g.u, 0]))
@@ -437,8 +469,9 @@ def test_profile_outside_the_dem_gives_nan_and_partial_share(tmp_path):
 def test_dem_spacing_of_a_geographic_dem(tmp_path):
     """3 arc-second cells at 45° N: Δφ·R = 92.66 m, Δλ·R·cos φ = 65.52 m (R = 6 371 008.8 m,
     computed by hand)."""
-    path = _dem(tmp_path, np.zeros((20, 20)), 3 / 3600, crs="EPSG:4326", x0=10.0, y0=45.0 + 10
-                * 3 / 3600)
+    path = _dem(
+        tmp_path, np.zeros((20, 20)), 3 / 3600, crs="EPSG:4326", x0=10.0, y0=45.0 + 10 * 3 / 3600
+    )
     with rasterio.open(path) as ds:
         assert rg.dem_spacing_m(ds) == pytest.approx(65.52, abs=0.01)
 
@@ -449,12 +482,14 @@ def test_dem_spacing_of_a_geographic_dem(tmp_path):
 
 
 def test_snap_points_nearest_edge_and_flags_far_points():
-    g = rg.build_road_graph(_gdf([LineString([(0, 0), (1000, 0)]),
-                                  LineString([(1000, 0), (1000, 1000)])]))
+    g = rg.build_road_graph(
+        _gdf([LineString([(0, 0), (1000, 0)]), LineString([(1000, 0), (1000, 1000)])])
+    )
     pts = np.array([[100, 30], [900, -20], [1010, 700], [5000, 5000], [np.nan, 0]])
     node, dist, ok = rg.snap_points(g, pts, 100.0)
-    ref = shapely.distance(shapely.points(pts[:4]),
-                           shapely.union_all(np.array(g.geometry, dtype=object)))
+    ref = shapely.distance(
+        shapely.points(pts[:4]), shapely.union_all(np.array(g.geometry, dtype=object))
+    )
     np.testing.assert_allclose(dist[:4], ref)
     np.testing.assert_allclose(g.node_xy[node[0]], [0, 0])
     np.testing.assert_allclose(g.node_xy[node[1]], [1000, 0])
@@ -472,7 +507,8 @@ def test_accepts_the_dem_derived_fallback_network():
 
     z = np.fromfunction(lambda r, c: 1000 + 5 * c + 60 * np.sin(r / 3.0), (60, 60))
     net = build_terrain_routes(
-        z, Affine(100, 0, X0, 0, -100, Y0),
+        z,
+        Affine(100, 0, X0, 0, -100, Y0),
         [(X0 + 500, Y0 - 500), (X0 + 5500, Y0 - 5500), (X0 + 5500, Y0 - 500)],
     )
     g = rg.build_road_graph(gpd.GeoDataFrame(net.records(), crs=UTM))

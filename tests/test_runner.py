@@ -16,8 +16,12 @@ CALLS: list[str] = []
 
 def _first(ctx, up):
     CALLS.append("first")
-    return {"table": gpd.GeoDataFrame({"v": [ctx.config.zones.resolution_m]},
-                                      geometry=[Point(0, 0)], crs="EPSG:4326"), "meta": {"n": 1}}
+    return {
+        "table": gpd.GeoDataFrame(
+            {"v": [ctx.config.zones.resolution_m]}, geometry=[Point(0, 0)], crs="EPSG:4326"
+        ),
+        "meta": {"n": 1},
+    }
 
 
 def _second(ctx, up):
@@ -34,8 +38,13 @@ def _cfg(tmp_path, resolution=900.0):
 
 
 STAGES = [
-    Stage("first", _first, params=lambda c: c.zones.resolution_m,
-          input_files=lambda c: [c.inputs.stations], modules=("pipeline.atmosphere",)),
+    Stage(
+        "first",
+        _first,
+        params=lambda c: c.zones.resolution_m,
+        input_files=lambda c: [c.inputs.stations],
+        modules=("pipeline.atmosphere",),
+    ),
     Stage("second", _second, needs=("first",)),
 ]
 

@@ -83,8 +83,7 @@ def test_path_nodes_are_the_union_of_the_walked_paths_in_settling_order():
     """Reference: each end's path walked predecessor by predecessor in Python."""
     a = random_csr(4)
     work = TreeWork(a.shape[0], a.nnz)
-    k = bounded_tree(a.indptr.astype(np.int64), a.indices.astype(np.int64), a.data, 3, 2500.0,
-                     work)
+    k = bounded_tree(a.indptr.astype(np.int64), a.indices.astype(np.int64), a.data, 3, 2500.0, work)
     order = work.order[:k]
     rng = np.random.default_rng(0)
     mark = np.zeros(a.shape[0], dtype=bool)

@@ -26,9 +26,21 @@ SOURCE = """    <SimpleSource>
 
 
 def _write(path, arr, x0, y0):
-    with rasterio.open(path, "w", driver="GTiff", width=arr.shape[1], height=arr.shape[0], count=1,
-                       dtype="float32", crs="EPSG:32608", transform=from_origin(x0, y0, 30, 30),
-                       nodata=-9999, tiled=True, blockxsize=32, blockysize=32) as ds:
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=arr.shape[1],
+        height=arr.shape[0],
+        count=1,
+        dtype="float32",
+        crs="EPSG:32608",
+        transform=from_origin(x0, y0, 30, 30),
+        nodata=-9999,
+        tiled=True,
+        blockxsize=32,
+        blockysize=32,
+    ) as ds:
         ds.write(arr, 1)
 
 
@@ -41,7 +53,9 @@ def test_vrt_mosaic_samples_like_the_whole_raster(tmp_path):
     for r in range(0, h, th):
         for c in range(0, w, tw):
             name = f"tile_{r}_{c}.tif"
-            _write(tmp_path / name, whole[r:r + th, c:c + tw], 300000 + 30 * c, 4500000 - 30 * r)
+            _write(
+                tmp_path / name, whole[r : r + th, c : c + tw], 300000 + 30 * c, 4500000 - 30 * r
+            )
             sources.append(SOURCE.format(name=name, tw=tw, th=th, x=c, y=r))
     (tmp_path / "mosaic.vrt").write_text(VRT.format(w=w, h=h, sources="\n".join(sources)))
     # points concentrated on the tile seams (x = 96 cells, y = 64 cells) and random elsewhere
