@@ -462,6 +462,102 @@ def _dedup_lines(geoms: np.ndarray) -> np.ndarray:
     return ~pd.Series(wkb).duplicated(keep="first").to_numpy()
 
 
+def _dedup_runs(xy: np.ndarray, first: np.ndarray, count: np.ndarray) -> np.ndarray:
+    """:func:`_dedup_lines` of the lines whose vertices are ``xy[first[k] : first[k] +
+    count[k]]`` (count >= 2), without building them: open lines are compared in the direction
+    GEOS ``normalize`` gives them (hash, then exact comparison of the coordinate bits);
+    closed lines, which GEOS also rotates, go through :func:`_dedup_lines`."""
+    n = first.size
+    keep = np.ones(n, dtype=bool)
+    if n == 0:
+        return keep
+    xy = np.ascontiguousarray(xy, dtype=np.float64)
+    first = np.asarray(first, dtype=np.int64)
+    count = np.asarray(count, dtype=np.int64)
+    last = first + count - 1
+    closed = (xy[first] == xy[last]).all(axis=1)
+    bits = xy.view(np.int64)
+    h, rev = _canonical_hash(xy, bits, first, count)
+    h = np.where(closed, np.uint64(0), h)
+    opened = np.flatnonzero(~closed)
+    order = opened[np.lexsort((opened, h[opened]))]
+    keep[order] = _first_of_equal_runs(bits, first, count, rev, h, order)
+    shut = np.flatnonzero(closed)
+    if shut.size:
+        keep[shut] = _dedup_lines(_lines_from_ranges(xy, first[shut], count[shut]))
+    return keep
+
+
+def _lines_from_ranges(xy: np.ndarray, first: np.ndarray, count: np.ndarray) -> np.ndarray:
+    idx = np.repeat(first - np.r_[0, np.cumsum(count)[:-1]], count) + np.arange(count.sum())
+    return shapely.linestrings(xy[idx], indices=np.repeat(np.arange(first.size), count))
+
+
+@njit(cache=True, nogil=True)
+def _canonical_hash(xy, bits, first, count):
+    """Per line: whether GEOS ``normalize`` reverses it (the first vertex that differs from
+    its mirror is lexicographically larger, x then y) and a 64-bit FNV-1a hash of the
+    coordinate bits in that direction."""
+    n = first.size
+    h = np.empty(n, dtype=np.uint64)
+    rev = np.zeros(n, dtype=np.bool_)
+    for k in range(n):
+        f = first[k]
+        c = count[k]
+        last = f + c - 1
+        r = False
+        for i in range(c // 2):
+            a = f + i
+            b = last - i
+            if xy[a, 0] != xy[b, 0]:
+                r = xy[a, 0] > xy[b, 0]
+                break
+            if xy[a, 1] != xy[b, 1]:
+                r = xy[a, 1] > xy[b, 1]
+                break
+        rev[k] = r
+        v = np.uint64(14695981039346656037) ^ np.uint64(c)
+        for i in range(c):
+            a = last - i if r else f + i
+            for d in range(2):
+                v = (v ^ np.uint64(bits[a, d])) * np.uint64(1099511628211)
+        h[k] = v
+    return h, rev
+
+
+@njit(cache=True, nogil=True)
+def _first_of_equal_runs(bits, first, count, rev, h, order):
+    """Along ``order`` (lines sorted by hash, then input position): False for a line equal
+    (same count, same coordinate bits in canonical direction) to an earlier one of its run."""
+    keep = np.ones(order.size, dtype=np.bool_)
+    start = 0
+    while start < order.size:
+        end = start + 1
+        while end < order.size and h[order[end]] == h[order[start]]:
+            end += 1
+        for p in range(start + 1, end):
+            k = order[p]
+            for q in range(start, p):
+                if not keep[q]:
+                    continue
+                j = order[q]
+                if count[j] != count[k]:
+                    continue
+                same = True
+                c = count[k]
+                for i in range(c):
+                    a = first[k] + c - 1 - i if rev[k] else first[k] + i
+                    b = first[j] + c - 1 - i if rev[j] else first[j] + i
+                    if bits[a, 0] != bits[b, 0] or bits[a, 1] != bits[b, 1]:
+                        same = False
+                        break
+                if same:
+                    keep[p] = False
+                    break
+        start = end
+    return keep
+
+
 def _unique_sorted(a: np.ndarray) -> np.ndarray:
     """Sorted unique values of a 1-D array (as ``np.unique``; a sort and a mask are many
     times faster than numpy 2's hash-based ``np.unique`` on a million integers)."""
@@ -750,8 +846,13 @@ def build_road_graph(
     geoms_in = np.asarray(lines.geometry.values, dtype=object)
     missing = shapely.is_missing(geoms_in) | shapely.is_empty(geoms_in)
     stats["empty_dropped"] = int(missing.sum())
-    parts, part_row = shapely.get_parts(shapely.force_2d(geoms_in), return_index=True)
-    tid = shapely.get_type_id(parts)
+    tid = shapely.get_type_id(geoms_in)
+    if (tid == 1).all() and not shapely.has_z(geoms_in).any():
+        # plain 2-D LineStrings (the usual road file): each is its own single part
+        parts, part_row = geoms_in, np.arange(geoms_in.size)
+    else:
+        parts, part_row = shapely.get_parts(shapely.force_2d(geoms_in), return_index=True)
+        tid = shapely.get_type_id(parts)
     is_line = (tid == 1) | (tid == 2)
     stats["non_line_dropped"] = int(_unique_sorted(part_row[~is_line]).size)
     parts, part_row = parts[is_line], part_row[is_line]
@@ -805,9 +906,9 @@ def build_road_graph(
     geoms = _lines_from_coords(xy, lid, n_lines)
 
     # 4. Exact duplicates.
-    alive = ~pd.isna(geoms)
+    alive = counts >= 2
     idx_alive = np.flatnonzero(alive)
-    dup_keep = _dedup_lines(geoms[idx_alive])
+    dup_keep = _dedup_runs(xy, (np.cumsum(counts) - counts)[idx_alive], counts[idx_alive])
     stats["duplicates_dropped"] = int((~dup_keep).sum())
     line_keep = np.zeros(n_lines, dtype=bool)
     line_keep[idx_alive[dup_keep]] = True
@@ -975,10 +1076,16 @@ def build_road_graph(
         zero = ~(plen > 0)
         pkeep = ~zero
         dkeep = np.zeros(pgeoms.size, dtype=bool)
-        dkeep[np.flatnonzero(pkeep)[_dedup_lines(pgeoms[pkeep])]] = True
+        # each piece's first and last vertex in pxy (vertices are sorted by piece)
+        pcount = np.bincount(pid, minlength=pid_u.size)
+        plast = np.cumsum(pcount) - 1
+        pfirst = plast - pcount + 1
+        kept = np.flatnonzero(pkeep)
+        dkeep[kept[_dedup_runs(pxy, pfirst[kept], pcount[kept])]] = True
         stats["zero_length_dropped"] += int(zero.sum())
         stats["duplicates_dropped"] += int((pkeep & ~dkeep).sum())
         pgeoms, piece_line = pgeoms[dkeep], piece_line[dkeep]
+        pfirst, plast = pfirst[dkeep], plast[dkeep]
     else:
         pgeoms = np.zeros(0, dtype=object)
         piece_line = np.zeros(0, dtype=np.int64)
@@ -986,8 +1093,7 @@ def build_road_graph(
     # 9. Nodes and edges.
     m = pgeoms.size
     if m:
-        first_pt = shapely.get_coordinates(shapely.get_point(pgeoms, 0))
-        last_pt = shapely.get_coordinates(shapely.get_point(pgeoms, -1))
+        first_pt, last_pt = pxy[pfirst], pxy[plast]
         node_xy, inv = _unique_rows(np.r_[first_pt, last_pt])
         u, v = inv[:m], inv[m:]
     else:

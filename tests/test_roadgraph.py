@@ -350,6 +350,54 @@ def test_crossing_prefilter_changes_no_graph(seed, monkeypatch):
     assert fast.stats["intersections_noded"] > 10
 
 
+def _dup_prone_lines(seed, n=400):
+    """Short lattice polylines, many of them repeats, reversals, rotations of closed rings
+    and near-repeats (one vertex moved, -0.0 for 0.0, a vertex more)."""
+    rng = np.random.default_rng(seed)
+    base = []
+    for _ in range(60):
+        k = int(rng.integers(2, 5))
+        pts = rng.integers(-2, 3, (k, 2)).astype(float)
+        if rng.random() < 0.2:
+            pts = np.r_[pts, pts[:1]]  # closed
+        base.append(pts)
+    out = []
+    for _ in range(n):
+        pts = base[int(rng.integers(len(base)))].copy()
+        r = rng.random()
+        if r < 0.3:
+            pts = pts[::-1]
+        elif r < 0.4 and (pts[0] == pts[-1]).all() and len(pts) > 3:
+            pts = np.r_[pts[1:-1], pts[1:2]]  # the same ring from its next vertex
+        elif r < 0.5:
+            pts[int(rng.integers(len(pts)))] += 0.5
+        elif r < 0.55:
+            pts = np.where(pts == 0.0, -0.0, pts)
+        elif r < 0.6:
+            pts = np.r_[pts, pts[-1:] + 1.0]
+        out.append(pts)
+    return out
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_duplicate_runs_match_geos_normalised_duplicates(seed):
+    """Reference: GEOS ``normalize`` + WKB equality (the previous method, kept as
+    ``_dedup_lines``) on lines with repeats, reversals, rotated rings and near-repeats."""
+    pts = _dup_prone_lines(seed)
+    count = np.array([len(p) for p in pts])
+    xy = np.concatenate(pts)
+    first = np.r_[0, np.cumsum(count)[:-1]]
+    lines = np.array([LineString(p) for p in pts], dtype=object)
+    expect = rg._dedup_lines(lines)
+    assert 20 < (~expect).sum() < len(pts) - 20  # both kinds occur
+    np.testing.assert_array_equal(rg._dedup_runs(xy, first, count), expect)
+    # every hash equal: the exact comparison alone decides
+    h, rev = rg._canonical_hash(xy, xy.view(np.int64), first, count)
+    opened = np.flatnonzero(~(xy[first] == xy[first + count - 1]).all(axis=1))
+    keep = rg._first_of_equal_runs(xy.view(np.int64), first, count, rev, np.zeros_like(h), opened)
+    np.testing.assert_array_equal(keep, expect[opened])
+
+
 def test_entry_index_finds_every_stored_entry_and_nothing_else():
     rng = np.random.default_rng(9)
     n = 30
