@@ -575,50 +575,184 @@ def _vertex_line_pairs(cid: np.ndarray, line_id: np.ndarray, n_lines: int) -> np
 #: Relative size of a cross product below which two segments from a shared end are treated as
 #: collinear (and left to GEOS): far above the rounding of the product itself.
 _COLLINEAR_REL = 1e-9
+#: Relative margin an orientation must clear to prove two segments apart: far above the
+#: rounding error of the determinant (a few ulps of its terms).
+_APART_REL = 1e-10
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _orient(ax, ay, bx, by, cx, cy):
+    """(orientation determinant of c against a → b, its rounding scale)."""
+    t1 = (bx - ax) * (cy - ay)
+    t2 = (by - ay) * (cx - ax)
+    return t1 - t2, abs(t1) + abs(t2)
 
 
 @njit(cache=True, nogil=True)
-def _meet_beyond_shared_ends(xy, starts, ends, pi, pj):
-    """For each line pair (pi[k], pj[k]): False when the two lines certainly meet only at
-    coordinates that are vertices of both — every pair of their segments either has disjoint
-    bounding boxes or shares exactly one end and is not collinear (two such segments meet at
-    that end alone) — True otherwise (the pair goes to GEOS). Vertices of line l are
-    xy[starts[l]] … xy[ends[l]]."""
-    out = np.zeros(pi.size, dtype=np.bool_)
-    for k in range(pi.size):
-        i = pi[k]
-        j = pj[k]
-        need = False
-        for a in range(starts[i], ends[i]):
-            ax0, ay0, ax1, ay1 = xy[a, 0], xy[a, 1], xy[a + 1, 0], xy[a + 1, 1]
-            for b in range(starts[j], ends[j]):
-                bx0, by0, bx1, by1 = xy[b, 0], xy[b, 1], xy[b + 1, 0], xy[b + 1, 1]
-                if (
-                    max(ax0, ax1) < min(bx0, bx1)
-                    or max(bx0, bx1) < min(ax0, ax1)
-                    or max(ay0, ay1) < min(by0, by1)
-                    or max(by0, by1) < min(ay0, ay1)
-                ):
-                    continue  # disjoint boxes: the segments cannot meet
-                s00 = ax0 == bx0 and ay0 == by0
-                s01 = ax0 == bx1 and ay0 == by1
-                s10 = ax1 == bx0 and ay1 == by0
-                s11 = ax1 == bx1 and ay1 == by1
-                if s00 + s01 + s10 + s11 != 1:
-                    need = True  # no shared end (or the same segment): ask GEOS
-                    break
-                # vectors from the shared end to the other ends
-                px, py = (ax0, ay0) if (s00 or s01) else (ax1, ay1)
-                ux, uy = (ax1 - px, ay1 - py) if (s00 or s01) else (ax0 - px, ay0 - py)
-                vx, vy = (bx1 - px, by1 - py) if (s00 or s10) else (bx0 - px, by0 - py)
-                cross = ux * vy - uy * vx
-                if abs(cross) <= _COLLINEAR_REL * np.hypot(ux, uy) * np.hypot(vx, vy):
-                    need = True  # (nearly) collinear: they may overlap
-                    break
-            if need:
-                break
-        out[k] = need
+def _segments_need_geos(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1):
+    """False when segments a and b certainly meet at a shared end alone or not at all — their
+    boxes are disjoint; or they share exactly one end and are not collinear; or they share no
+    end and the ends of one lie strictly on one side of the other's line (by a margin far above
+    rounding) — True otherwise (the pair of lines goes to GEOS)."""
+    if (
+        max(ax0, ax1) < min(bx0, bx1)
+        or max(bx0, bx1) < min(ax0, ax1)
+        or max(ay0, ay1) < min(by0, by1)
+        or max(by0, by1) < min(ay0, ay1)
+    ):
+        return False
+    s00 = ax0 == bx0 and ay0 == by0
+    s01 = ax0 == bx1 and ay0 == by1
+    s10 = ax1 == bx0 and ay1 == by0
+    s11 = ax1 == bx1 and ay1 == by1
+    shared = s00 + s01 + s10 + s11
+    if shared == 0:
+        d1, e1 = _orient(ax0, ay0, ax1, ay1, bx0, by0)
+        d2, e2 = _orient(ax0, ay0, ax1, ay1, bx1, by1)
+        if (d1 > _APART_REL * e1 and d2 > _APART_REL * e2) or (
+            d1 < -_APART_REL * e1 and d2 < -_APART_REL * e2
+        ):
+            return False
+        d3, e3 = _orient(bx0, by0, bx1, by1, ax0, ay0)
+        d4, e4 = _orient(bx0, by0, bx1, by1, ax1, ay1)
+        if (d3 > _APART_REL * e3 and d4 > _APART_REL * e4) or (
+            d3 < -_APART_REL * e3 and d4 < -_APART_REL * e4
+        ):
+            return False
+        return True
+    if shared != 1:
+        return True  # the same segment (either direction)
+    # vectors from the shared end to the other ends
+    px, py = (ax0, ay0) if (s00 or s01) else (ax1, ay1)
+    ux, uy = (ax1 - px, ay1 - py) if (s00 or s01) else (ax0 - px, ay0 - py)
+    vx, vy = (bx1 - px, by1 - py) if (s00 or s10) else (bx0 - px, by0 - py)
+    cross = ux * vy - uy * vx
+    return abs(cross) <= _COLLINEAR_REL * np.hypot(ux, uy) * np.hypot(vx, vy)
+
+
+def _crossing_candidates(
+    xy: np.ndarray, starts: np.ndarray, ends: np.ndarray, active: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Line pairs (i < j, both ``active``) that may meet somewhere other than at vertices of
+    both: the pairs with a segment pair for which :func:`_segments_need_geos` holds.
+
+    Segments are hashed into a uniform grid (cell: twice the 90th percentile of segment
+    extents; longer segments are registered piece by piece), and the segments sharing a cell
+    are compared. Every pair of lines that crosses, overlaps or touches away from shared
+    vertices is among the result; most junction pairs (one shared end) are not. Vertices of
+    line l are ``xy[starts[l]] … xy[ends[l]]``."""
+    xy = np.ascontiguousarray(xy, dtype=np.float64)
+    seg_line = np.repeat(np.arange(starts.size), np.maximum(ends - starts, 0))
+    seg_line = seg_line[np.asarray(active, dtype=bool)[seg_line]]
+    if seg_line.size < 2:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    seg = _segment_starts(starts, ends, seg_line)
+    ext = np.maximum(np.abs(xy[seg + 1, 0] - xy[seg, 0]), np.abs(xy[seg + 1, 1] - xy[seg, 1]))
+    lo = xy[np.r_[seg, seg + 1]].min(axis=0)
+    hi = xy[np.r_[seg, seg + 1]].max(axis=0)
+    cell = 2.0 * float(np.percentile(ext, 90))
+    cell = max(cell, float(np.max(hi - lo)) / 2.0**20, 1e-9)
+    keys, segs = _grid_register(xy, seg, lo[0], lo[1], cell)
+    order = np.argsort(keys, kind="stable")
+    pair_keys = _cell_pairs(xy, seg, seg_line, keys[order], segs[order], np.int64(starts.size))
+    pair_keys = _unique_sorted(pair_keys)
+    return pair_keys // starts.size, pair_keys % starts.size
+
+
+@njit(cache=True, nogil=True)
+def _segment_starts(starts, ends, seg_line):
+    """First vertex of every segment of the lines in ``seg_line`` (runs of one line)."""
+    out = np.empty(seg_line.size, dtype=np.int64)
+    k = 0
+    while k < seg_line.size:
+        line = seg_line[k]
+        for a in range(starts[line], ends[line]):
+            out[k] = a
+            k += 1
     return out
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _piece_cells(xy, a, p, pieces, x0, y0, cell):
+    """Cell range (cx0, cx1, cy0, cy1) of piece p of ``pieces`` of segment a, its box widened
+    by a relative 1e-9."""
+    ax, ay, bx, by = xy[a, 0], xy[a, 1], xy[a + 1, 0], xy[a + 1, 1]
+    pad = 1e-9 * (abs(ax) + abs(ay) + abs(bx) + abs(by) + cell)
+    t0 = p / pieces
+    t1 = (p + 1) / pieces
+    px0, py0 = ax + (bx - ax) * t0, ay + (by - ay) * t0
+    px1, py1 = ax + (bx - ax) * t1, ay + (by - ay) * t1
+    if p == pieces - 1:
+        px1, py1 = bx, by
+    return (
+        int(np.floor((min(px0, px1) - pad - x0) / cell)),
+        int(np.floor((max(px0, px1) + pad - x0) / cell)),
+        int(np.floor((min(py0, py1) - pad - y0) / cell)),
+        int(np.floor((max(py0, py1) + pad - y0) / cell)),
+    )
+
+
+@njit(cache=True, nogil=True)
+def _grid_register(xy, seg, x0, y0, cell):
+    """(cell key, segment index) for every grid cell a segment may touch: the cells of the
+    boxes of its pieces of extent <= cell (see :func:`_piece_cells`)."""
+    n = seg.size
+    pieces = np.empty(n, dtype=np.int64)
+    count = 0
+    for s in range(n):
+        a = seg[s]
+        ext = max(abs(xy[a + 1, 0] - xy[a, 0]), abs(xy[a + 1, 1] - xy[a, 1]))
+        pieces[s] = int(ext / cell) + 1
+        for p in range(pieces[s]):
+            cx0, cx1, cy0, cy1 = _piece_cells(xy, a, p, pieces[s], x0, y0, cell)
+            count += (cx1 - cx0 + 1) * (cy1 - cy0 + 1)
+    keys = np.empty(count, dtype=np.int64)
+    segs = np.empty(count, dtype=np.int64)
+    k = 0
+    for s in range(n):
+        a = seg[s]
+        for p in range(pieces[s]):
+            cx0, cx1, cy0, cy1 = _piece_cells(xy, a, p, pieces[s], x0, y0, cell)
+            for cx in range(cx0, cx1 + 1):
+                for cy in range(cy0, cy1 + 1):
+                    keys[k] = (cx + 2) * np.int64(1 << 22) + (cy + 2)
+                    segs[k] = s
+                    k += 1
+    return keys, segs
+
+
+@njit(cache=True, nogil=True)
+def _cell_pairs(xy, seg, seg_line, keys, segs, n_lines):
+    """Keys i·n + j (i < j) of line pairs with a segment pair in one cell that needs GEOS."""
+    out = np.empty(1024, dtype=np.int64)
+    m = 0
+    start = 0
+    while start < keys.size:
+        end = start + 1
+        while end < keys.size and keys[end] == keys[start]:
+            end += 1
+        for p in range(start, end):
+            s = segs[p]
+            a = seg[s]
+            li = seg_line[s]
+            for q in range(p + 1, end):
+                t = segs[q]
+                lj = seg_line[t]
+                if lj == li:
+                    continue
+                b = seg[t]
+                if _segments_need_geos(
+                    xy[a, 0], xy[a, 1], xy[a + 1, 0], xy[a + 1, 1],
+                    xy[b, 0], xy[b, 1], xy[b + 1, 0], xy[b + 1, 1],
+                ):  # fmt: skip
+                    if m == out.size:
+                        grown = np.empty(2 * out.size, dtype=np.int64)
+                        grown[:m] = out[:m]
+                        out = grown
+                    out[m] = min(li, lj) * n_lines + max(li, lj)
+                    m += 1
+        start = end
+    return out[:m]
 
 
 def _in_sorted(sorted_keys: np.ndarray, q: np.ndarray) -> np.ndarray:
@@ -966,20 +1100,13 @@ def build_road_graph(
                 starts, ends = _line_bounds(lid, n_lines)
                 geoms = _lines_from_coords(xy, lid, n_lines)
 
-        # 6. Crossings: every pair of lines that intersects (most only touch at shared
-        # vertices; their intersection points are found to be vertices already).
-        tree = shapely.STRtree(geoms)
-        pi, pj = tree.query(geoms, predicate="intersects")
-        m = pi < pj
-        pi, pj = pi[m], pj[m]
-        br_pair = is_bridge[pi] | is_bridge[pj]
-        pi, pj = pi[~br_pair], pj[~br_pair]
-        # Most pairs only share an end (a junction): GEOS would find their one common point
-        # to be a vertex of both. Only pairs that may meet elsewhere are intersected.
-        need = _meet_beyond_shared_ends(xy, starts, ends, pi.astype(np.int64), pj.astype(np.int64))
-        pi, pj = pi[need], pj[need]
+        # 6. Crossings between non-bridge lines. Most pairs of lines that touch only share
+        # an end (a junction), which GEOS would find to be a vertex of both: only the pairs
+        # that may meet elsewhere are intersected.
+        pi, pj = _crossing_candidates(xy, starts, ends, ~is_bridge)
         # Bridges: count lines that meet a bridge away from its ends (left unconnected).
         if is_bridge.any():
+            tree = shapely.STRtree(geoms)
             bq, bo = tree.query(geoms[is_bridge], predicate="intersects")
             b_line = np.flatnonzero(is_bridge)[bq]
             keep_b = (bo != b_line) & ~(is_bridge[bo] & (bo < b_line))  # each pair once

@@ -313,34 +313,84 @@ def _lattice_polylines(seed, n=120, side=12, max_vertices=4):
     return lines
 
 
-@pytest.mark.parametrize("seed", [0, 1, 2])
-def test_pairs_left_out_of_the_crossing_search_meet_only_at_shared_vertices(seed):
-    """GEOS (shapely.intersection) as the reference: every line pair the pre-filter leaves
-    out intersects only at coordinates that are vertices of both lines."""
-    lines = np.array(_lattice_polylines(seed), dtype=object)
-    xy, lid = shapely.get_coordinates(lines, return_index=True)
-    starts, ends = rg._line_bounds(lid, lines.size)
+def _float_polylines(seed, n=150):
+    """Random polylines in UTM-sized coordinates: short segments and a few kilometres-long
+    ones (many grid cells), crossing at arbitrary points."""
+    rng = np.random.default_rng(seed)
+    lines = []
+    for _ in range(n):
+        k = int(rng.integers(2, 6))
+        step = 5000.0 if rng.random() < 0.1 else 150.0
+        p0 = np.array([X0, Y0 - 3000.0]) + rng.uniform(0, 3000, 2)
+        pts = p0 + np.cumsum(rng.normal(0, step, (k, 2)), axis=0)
+        lines.append(LineString(pts))
+    return lines
+
+
+def _touching_pairs(lines):
     pi, pj = shapely.STRtree(lines).query(lines, predicate="intersects")
     m = pi < pj
-    pi, pj = pi[m].astype(np.int64), pj[m].astype(np.int64)
-    need = rg._meet_beyond_shared_ends(xy, starts, ends, pi, pj)
-    assert 0 < need.sum() < need.size  # both kinds occur
-    for i, j in zip(pi[~need], pj[~need], strict=True):
-        pts = shapely.get_coordinates(shapely.intersection(lines[i], lines[j]))
-        vi = {tuple(c) for c in shapely.get_coordinates(lines[i])}
-        vj = {tuple(c) for c in shapely.get_coordinates(lines[j])}
-        assert all(tuple(c) in vi and tuple(c) in vj for c in pts), (i, j, pts)
+    return pi[m], pj[m]
 
 
-@pytest.mark.parametrize("seed", [3, 4])
-def test_crossing_prefilter_changes_no_graph(seed, monkeypatch):
-    """The graph with the pre-filter equals the graph built by intersecting every touching
-    pair, on lattice polylines full of junctions, overlaps and crossings."""
-    gdf = _gdf(_lattice_polylines(seed, n=150))
+def _meets_off_shared_vertices(a, b) -> bool:
+    """GEOS: does the intersection of lines a and b hold a point that is not a vertex of both?"""
+    pts = shapely.get_coordinates(shapely.intersection(a, b))
+    va = {tuple(c) for c in shapely.get_coordinates(a)}
+    vb = {tuple(c) for c in shapely.get_coordinates(b)}
+    return any(tuple(c) not in va or tuple(c) not in vb for c in pts)
+
+
+@pytest.mark.parametrize(
+    "make,seed", [(_lattice_polylines, 0), (_lattice_polylines, 1), (_float_polylines, 2)]
+)
+def test_crossing_search_finds_every_pair_meeting_off_shared_vertices(make, seed):
+    """GEOS (STRtree 'intersects' + shapely.intersection) as the reference: every pair of
+    lines that meets at a point other than a vertex of both is a candidate; pairs that only
+    share junction vertices are mostly left out."""
+    lines = np.array(make(seed), dtype=object)
+    xy, lid = shapely.get_coordinates(lines, return_index=True)
+    starts, ends = rg._line_bounds(lid, lines.size)
+    ci, cj = rg._crossing_candidates(xy, starts, ends, np.ones(lines.size, bool))
+    cand = set(zip(ci.tolist(), cj.tolist(), strict=True))
+    pi, pj = _touching_pairs(lines)
+    needed = {
+        (i, j)
+        for i, j in zip(pi.tolist(), pj.tolist(), strict=True)
+        if _meets_off_shared_vertices(lines[i], lines[j])
+    }
+    assert len(needed) > 10
+    assert needed <= cand
+    if make is _lattice_polylines:
+        # integer coordinates: the orientation tests are exact, so no pair apart is a candidate
+        assert cand <= set(zip(pi.tolist(), pj.tolist(), strict=True))
+        assert len(cand) < pi.size  # pairs meeting only at shared vertices skip GEOS
+    # inactive lines never appear
+    active = np.arange(lines.size) % 3 != 0
+    ai, aj = rg._crossing_candidates(xy, starts, ends, active)
+    assert active[ai].all() and active[aj].all()
+    assert set(zip(ai.tolist(), aj.tolist(), strict=True)) == {
+        (i, j) for i, j in cand if active[i] and active[j]
+    }
+
+
+def _all_touching_pairs(xy, starts, ends, active):
+    """Reference candidate search: every touching pair of active lines, via GEOS."""
+    lines = rg._lines_from_ranges(xy, starts, ends - starts + 1)
+    pi, pj = _touching_pairs(lines)
+    keep = active[pi] & active[pj]
+    return pi[keep].astype(np.int64), pj[keep].astype(np.int64)
+
+
+@pytest.mark.parametrize("make,seed", [(_lattice_polylines, 3), (_float_polylines, 4)])
+def test_crossing_search_changes_no_graph(make, seed, monkeypatch):
+    """The graph equals the one built by intersecting every touching pair of lines, on
+    polylines full of junctions, overlaps and crossings."""
+    kw = {"n": 150} if make is _lattice_polylines else {}
+    lines = make(seed, **kw)
+    gdf = _gdf(lines, bridge=np.arange(len(lines)) % 17 == 0)
     fast = rg.build_road_graph(gdf, snap_tolerance_m=0.0)
-    monkeypatch.setattr(
-        rg, "_meet_beyond_shared_ends", lambda xy, s, e, pi, pj: np.ones(pi.size, dtype=bool)
-    )
+    monkeypatch.setattr(rg, "_crossing_candidates", _all_touching_pairs)
     full = rg.build_road_graph(gdf, snap_tolerance_m=0.0)
     np.testing.assert_array_equal(fast.node_xy, full.node_xy)
     np.testing.assert_array_equal(fast.u, full.u)
