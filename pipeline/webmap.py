@@ -693,6 +693,26 @@ class _Raw(Element):
         return self._text
 
 
+_RELIEF_ID = "altigrade-relief"
+
+
+class _ReliefOverlay(folium.raster_layers.ImageOverlay):
+    """Leaflet image overlay whose image URL is read from the page element ``_RELIEF_ID``."""
+
+    _template = Template(
+        """
+        {% macro script(this, kwargs) %}
+            var {{ this.get_name() }} = L.imageOverlay(
+                document.getElementById({{ this.relief_id|tojson }}).textContent,
+                {{ this.bounds|tojson }},
+                {{ this.options|tojavascript }}
+            );
+        {% endmacro %}
+        """
+    )
+    relief_id = _RELIEF_ID
+
+
 class _PageBody(MacroElement):
     """Side panel (title, search, legend, cautions), the JSON data block, and the script that
     starts the runtime.
@@ -1085,9 +1105,15 @@ def build_map_html(spec: MapSpec) -> str:
 
     if spec.basemap is not None:
         url = "data:image/png;base64," + base64.b64encode(spec.basemap.png_bytes).decode("ascii")
+        # the image travels as raw text (base64 cannot close the element), not through the
+        # overlay's template: branca would compile megabytes of it as Jinja code
+        figure.header.add_child(
+            _Raw(f'<script type="text/plain" id="{_RELIEF_ID}">{url}</script>'),
+            name="ag_relief_png",
+        )
         (s, w), (n, e) = spec.basemap.bounds_latlon
-        folium.raster_layers.ImageOverlay(
-            image=url,
+        _ReliefOverlay(
+            image="data:,",  # a placeholder: the template reads the image from the page
             bounds=[[float(s), float(w)], [float(n), float(e)]],
             name="Shaded relief",
             pixelated=False,

@@ -421,7 +421,10 @@ def test_rows_without_geometry_are_counted_in_legend():
 def test_basemap_is_embedded_as_data_png():
     bm = Basemap(png_bytes=b"\x89PNG\r\n\x1a\nfake", bounds_latlon=((39.0, -137.5), (40.7, -135.3)))
     html_text = build_map_html(sample_spec(basemap=bm))
-    assert '"data:image/png;base64,iVBORw0KGgpmYWtl"' in html_text
+    assert (
+        '<script type="text/plain" id="altigrade-relief">data:image/png;base64,iVBORw0KGgpmYWtl<'
+        in html_text
+    )
     assert "[[39.0, -137.5], [40.7, -135.3]]" in html_text
     assert '"Shaded relief"' in html_text
 
@@ -511,6 +514,28 @@ def _no_injection(page, html_text: str) -> None:
     )
     # As many script elements as the static page has (Leaflet, runtime, data, folium's).
     assert found == {"imgs": 0, "scripts": html_text.count("<script"), "handlers": 0}
+
+
+@pytest.mark.browser
+def test_browser_draws_the_shaded_relief_image(browser, tmp_path):
+    import io as _io
+
+    from PIL import Image
+
+    buf = _io.BytesIO()
+    Image.new("RGB", (40, 30), (120, 90, 60)).save(buf, format="PNG")
+    bm = Basemap(png_bytes=buf.getvalue(), bounds_latlon=((40.55, -136.9), (40.65, -136.7)))
+    path = tmp_path / "relief.html"
+    path.write_text(build_map_html(sample_spec(basemap=bm)), encoding="utf-8")
+    with open_local_html(browser, path) as (page, rec):
+        img = page.locator("img.leaflet-image-layer")
+        assert img.count() == 1
+        page.wait_for_function("() => document.querySelector('img.leaflet-image-layer').complete")
+        got = img.evaluate("e => [e.src.slice(0, 22), e.naturalWidth, e.naturalHeight]")
+        assert got == ["data:image/png;base64,", 40, 30]
+        labels = page.locator(".leaflet-control-layers-overlays label").all_inner_texts()
+        assert [t.strip() for t in labels] == ["Shaded relief", *LAYER_NAMES]
+    rec.assert_clean()
 
 
 @pytest.mark.browser
