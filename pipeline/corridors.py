@@ -452,19 +452,21 @@ def compute_corridors(
     sr = _column(profiles, "sustained_climb_reverse_m", "profiles").astype(float)
     grade = np.where(ent_fwd, gf[ent_edge], gr[ent_edge])
     sust = np.where(ent_fwd, sf[ent_edge], sr[ent_edge])
-    req_bins = []
-    for c in elev_cols:
-        elev = _column(profiles, c, "profiles").astype(float)[ent_edge]
-        rb = np.asarray(required_aki(elev, grade, sust), dtype=float)
-        if rb.ndim == 0:
-            rb = np.full(nnz, float(rb))
-        if rb.shape != (nnz,):
-            raise CorridorError(
-                f"required_aki returned shape {rb.shape}; expected ({nnz},), one value per "
-                "edge-direction"
-            )
-        req_bins.append(rb)
-    req = np.column_stack(req_bins) if req_bins else np.zeros((nnz, 1))  # (nnz, bins)
+    # every elevation bin in one call (a requirement that solves distinct values once then
+    # shares them across bins)
+    k = len(elev_cols)
+    elev = np.concatenate(
+        [_column(profiles, c, "profiles").astype(float)[ent_edge] for c in elev_cols]
+    )
+    rb = np.asarray(required_aki(elev, np.tile(grade, k), np.tile(sust, k)), dtype=float)
+    if rb.ndim == 0:
+        rb = np.full(k * nnz, float(rb))
+    if rb.shape != (k * nnz,):
+        raise CorridorError(
+            f"required_aki returned shape {rb.shape}; expected ({k * nnz},), one value per "
+            "edge-direction and elevation"
+        )
+    req = np.ascontiguousarray(rb.reshape(k, nnz).T) if k else np.zeros((nnz, 1))  # (nnz, bins)
     req_nan = ~np.isfinite(req).all(axis=1)
     # NaN requirement → no deficit: −inf makes max(req − tank, 0) zero without a test
     req_clean = np.where(np.isfinite(req), req, -np.inf)

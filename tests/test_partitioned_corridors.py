@@ -211,9 +211,10 @@ def test_every_execution_mode_gives_identical_bits(case, mode, root):
 
 def test_requirement_function_solves_each_elevation_and_load_once(tmp_path):
     """The stage's fleet requirement on road entries solves each distinct (elevation, load)
-    pair once; the values must be those of the fleet model called element by element
-    (pipeline.requirement.justified_aki, itself checked against its sources in
-    test_requirement.py), NaN elevation giving NaN."""
+    pair once, at elevations taken to the centimetre; the values must be those of the fleet
+    model called element by element at those elevations (pipeline.requirement.justified_aki,
+    itself checked against its sources in test_requirement.py) and within 1e-4 AKI of it at
+    the exact elevations; NaN elevation gives NaN."""
     from pipeline import requirement as rq
     from pipeline.config import parse_config
     from pipeline.corridor_stage import requirement_function
@@ -228,10 +229,18 @@ def test_requirement_function_solves_each_elevation_and_load_once(tmp_path):
     got = requirement_function(cfg)(z, g, c)
     cc = cfg.corridors
     load = np.where(g >= cc.climb_grade_threshold_pct, np.clip(c / cc.full_load_climb_m, 0, 1), 0)
-    cond = rq.design_conditions(z, cfg.design_day, cfg.fleet.reference)
-    cond = cond._replace(sustained_load=np.maximum(load, float(cfg.design_day.sustained_load)))
     mix = rq.mix_array(dict(cfg.fleet_mix.shares), cfg.fleet)
-    want = np.asarray(rq.justified_aki(mix, cfg.fleet, cond).aki, dtype=float)
-    np.testing.assert_array_equal(got, want)
+
+    def model(elevation_m):
+        cond = rq.design_conditions(elevation_m, cfg.design_day, cfg.fleet.reference)
+        load_eff = np.maximum(load, float(cfg.design_day.sustained_load))
+        return np.asarray(
+            rq.justified_aki(mix, cfg.fleet, cond._replace(sustained_load=load_eff)).aki
+        )
+
+    np.testing.assert_array_equal(got, model(np.round(z / 0.01) * 0.01))
+    exact = model(z)
+    np.testing.assert_allclose(got, exact, rtol=0, atol=1e-4)
+    assert not np.array_equal(got[:n], exact[:n])  # the rounding is real
     assert np.isnan(got[-1]) and np.isfinite(got[:-1]).all()
     assert (got[n : n + 200 : 2] < got[n + 1 : n + 200 : 2]).all()  # the climb load raises it
