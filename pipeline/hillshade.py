@@ -20,6 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 import rasterio
 from affine import Affine
+from numba import njit
 from PIL import Image
 from rasterio.enums import Resampling
 from rasterio.warp import reproject, transform_bounds
@@ -137,21 +138,7 @@ def hillshade(
     if z.size == 0:
         return z.copy()
 
-    padded = np.pad(z, 1, mode="edge")
-    rows, cols = z.shape
-
-    def window(dr: int, dc: int) -> np.ndarray:
-        # A missing neighbour takes the value of the centre cell of its window.
-        w = padded[1 + dr : 1 + dr + rows, 1 + dc : 1 + dc + cols]
-        return np.where(np.isnan(w), z, w)
-
-    a, b, c = window(-1, -1), window(-1, 0), window(-1, 1)
-    d, f = window(0, -1), window(0, 1)
-    g, h, i = window(1, -1), window(1, 0), window(1, 1)
-
-    dzdx = ((c + 2.0 * f + i) - (a + 2.0 * d + g)) / (8.0 * cell_x_m)
-    dzdy = ((a + 2.0 * b + c) - (g + 2.0 * h + i)) / (8.0 * cell_y_m)
-
+    dzdx, dzdy = _horn_gradient(np.ascontiguousarray(z), float(cell_x_m), float(cell_y_m))
     slope = np.arctan(z_factor * np.hypot(dzdx, dzdy))
     aspect = np.arctan2(-dzdx, -dzdy)
     zenith = math.radians(90.0 - altitude_deg)
@@ -162,6 +149,36 @@ def hillshade(
     shade = np.clip(shade, 0.0, 1.0)
     shade[np.isnan(z)] = np.nan
     return shade
+
+
+@njit(cache=True, nogil=True)
+def _horn_gradient(z, cell_x, cell_y):
+    """Horn's dz/dx and dz/dy of every cell (see :func:`hillshade`): edge-replicated borders,
+    a missing neighbour taking the centre's value; in one pass, without padded copies."""
+    rows, cols = z.shape
+    dzdx = np.empty((rows, cols), dtype=np.float64)
+    dzdy = np.empty((rows, cols), dtype=np.float64)
+    for r in range(rows):
+        rn = max(r - 1, 0)
+        rs = min(r + 1, rows - 1)
+        for c in range(cols):
+            e = z[r, c]
+            cw = max(c - 1, 0)
+            ce = min(c + 1, cols - 1)
+            a, b, cc = z[rn, cw], z[rn, c], z[rn, ce]
+            d, f = z[r, cw], z[r, ce]
+            g, h, i = z[rs, cw], z[rs, c], z[rs, ce]
+            a = e if np.isnan(a) else a
+            b = e if np.isnan(b) else b
+            cc = e if np.isnan(cc) else cc
+            d = e if np.isnan(d) else d
+            f = e if np.isnan(f) else f
+            g = e if np.isnan(g) else g
+            h = e if np.isnan(h) else h
+            i = e if np.isnan(i) else i
+            dzdx[r, c] = ((cc + 2.0 * f + i) - (a + 2.0 * d + g)) / (8.0 * cell_x)
+            dzdy[r, c] = ((a + 2.0 * b + cc) - (g + 2.0 * h + i)) / (8.0 * cell_y)
+    return dzdx, dzdy
 
 
 def _hex_to_rgb(hex_colour: str) -> tuple[float, float, float]:
