@@ -1357,23 +1357,61 @@ def _length_quantiles(
     """Length-weighted quantiles of a per-segment value for each edge (NaN for an edge
     without valid segments): the value of the first segment, in ascending order of value,
     at which the cumulative length reaches f·(valid length)."""
-    sel = np.flatnonzero(valid & (seg_len > 0))
-    out = [np.full(n_edges, np.nan) for _ in fractions]
-    if sel.size == 0:
-        return out
-    order = np.lexsort((value[sel], seg_edge[sel]))
-    se, sv, sl = seg_edge[sel][order], value[sel][order], seg_len[sel][order]
-    # Cumulative length within each edge, summed from the edge's own start (a running sum over
-    # all edges would round each edge's sums by what precedes it, and a quantile that falls on
-    # a segment boundary could then depend on the other edges profiled with it).
-    cum = pd.Series(sl).groupby(se, sort=False).cumsum().to_numpy()
-    last = np.r_[se[1:] != se[:-1], True]
-    tot = np.zeros(n_edges)
-    tot[se[last]] = cum[last]
-    for o, f in zip(out, fractions, strict=True):
-        hit = np.flatnonzero(cum >= f * tot[se])
-        edges, first = np.unique(se[hit], return_index=True)
-        o[edges] = sv[hit[first]]
+    sel = valid & (seg_len > 0)
+    out = _length_quantiles_runs(
+        np.ascontiguousarray(value, dtype=np.float64),
+        np.ascontiguousarray(seg_len, dtype=np.float64),
+        np.ascontiguousarray(seg_edge, dtype=np.int64),
+        sel,
+        int(n_edges),
+        np.asarray(fractions, dtype=np.float64),
+    )
+    return list(out)
+
+
+@njit(cache=True, nogil=True)
+def _length_quantiles_runs(value, seg_len, seg_edge, sel, n_edges, fractions):
+    """:func:`_length_quantiles` edge by edge (segments sorted by edge): the selected
+    segments of an edge in ascending value (ties in input order), their lengths summed in that
+    order from the edge's own start (compensated sum), and for each fraction the first that
+    reaches f·total."""
+    out = np.full((fractions.size, n_edges), np.nan)
+    idx = np.empty(seg_edge.size, dtype=np.int64)
+    start = 0
+    while start < seg_edge.size:
+        e = seg_edge[start]
+        end = start + 1
+        while end < seg_edge.size and seg_edge[end] == e:
+            end += 1
+        n = 0
+        for k in range(start, end):
+            if sel[k]:
+                # stable insertion by value
+                v = value[k]
+                p = n
+                while p > 0 and value[idx[p - 1]] > v:
+                    idx[p] = idx[p - 1]
+                    p -= 1
+                idx[p] = k
+                n += 1
+        if n:
+            # compensated (Kahan) running sum, as pandas' grouped cumsum forms it
+            cum = np.empty(n)
+            acc = 0.0
+            comp = 0.0
+            for p in range(n):
+                y = seg_len[idx[p]] - comp
+                t = acc + y
+                comp = t - acc - y
+                acc = t
+                cum[p] = acc
+            for q in range(fractions.size):
+                target = fractions[q] * cum[n - 1]
+                for p in range(n):
+                    if cum[p] >= target:
+                        out[q, e] = value[idx[p]]
+                        break
+        start = end
     return out
 
 

@@ -613,3 +613,45 @@ def test_accepts_the_dem_derived_fallback_network():
     assert g.n_edges == len(net.segments)
     assert g.stats["components"] == 1
     assert g.attributes["bridge"].sum() == 0 and not g.attributes["oneway"].any()
+
+
+def _pandas_length_quantiles(value, seg_len, seg_edge, valid, n_edges, fractions):
+    """Reference: numpy's stable lexsort and pandas' grouped cumulative sum."""
+    import pandas as pd
+
+    sel = np.flatnonzero(valid & (seg_len > 0))
+    out = [np.full(n_edges, np.nan) for _ in fractions]
+    order = np.lexsort((value[sel], seg_edge[sel]))
+    se, sv, sl = seg_edge[sel][order], value[sel][order], seg_len[sel][order]
+    cum = pd.Series(sl).groupby(se, sort=False).cumsum().to_numpy()
+    last = np.r_[se[1:] != se[:-1], True]
+    tot = np.zeros(n_edges)
+    tot[se[last]] = cum[last]
+    for o, f in zip(out, fractions, strict=True):
+        hit = np.flatnonzero(cum >= f * tot[se])
+        edges, first = np.unique(se[hit], return_index=True)
+        o[edges] = sv[hit[first]]
+    return out
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_length_quantiles_match_a_sort_and_grouped_cumsum(seed):
+    """Reference: numpy lexsort + pandas groupby cumsum, on edges with ties in value, equal
+    lengths (quantiles on segment boundaries), invalid and zero-length segments, long edges,
+    edges without any valid segment and lengths of very different size."""
+    rng = np.random.default_rng(seed)
+    n_edges = 400
+    per = rng.integers(1, 9, n_edges)
+    per[::37] = 300  # long edges
+    seg_edge = np.repeat(np.arange(n_edges), per)
+    n = seg_edge.size
+    value = np.round(rng.uniform(1000, 1010, n), 0)  # many ties
+    seg_len = rng.choice([25.0, 25.0, 12.5, 1e-9, 0.0, 3e4], n)
+    valid = rng.random(n) > 0.1
+    valid[seg_edge == 5] = False
+    fractions = (0.0, 0.1, 0.25, 0.5, 0.75, 0.9, 1.0)
+    got = rg._length_quantiles(value, seg_len, seg_edge, valid, n_edges, fractions)
+    want = _pandas_length_quantiles(value, seg_len, seg_edge, valid, n_edges, fractions)
+    for g, w in zip(got, want, strict=True):
+        np.testing.assert_array_equal(g, w)
+    assert np.isnan(got[3][5]) and np.isfinite(got[3]).sum() > 300
