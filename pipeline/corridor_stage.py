@@ -15,6 +15,7 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 import shapely
+from numba import njit
 from rasterio.enums import Resampling
 
 from pipeline import io, terrain
@@ -63,31 +64,110 @@ def requirement_function(cfg: RunConfig):
     c = cfg.corridors
 
     def required_aki(elevation_m, uphill_grade_pct, sustained_climb_m):
-        z = np.asarray(elevation_m, dtype=float)
-        g = np.broadcast_to(np.asarray(uphill_grade_pct, dtype=float), z.shape)
-        climb = np.broadcast_to(np.asarray(sustained_climb_m, dtype=float), z.shape)
+        z = np.atleast_1d(np.asarray(elevation_m, dtype=float))
+        g = np.asarray(uphill_grade_pct, dtype=float)
+        climb = np.asarray(sustained_climb_m, dtype=float)
+        # the load on the grade and climb's own (often smaller) shape, then broadcast as a view
         with np.errstate(invalid="ignore"):
             load = np.where(
                 g >= c.climb_grade_threshold_pct,
                 np.clip(np.nan_to_num(climb) / c.full_load_climb_m, 0.0, 1.0),
                 0.0,
             )
-        zf = np.round(z.ravel() / ELEVATION_STEP_M) * ELEVATION_STEP_M
-        lf = np.maximum(load.ravel(), float(cfg.design_day.sustained_load))
+        shape = np.broadcast_shapes(z.shape, load.shape)
+        zb, lb = np.broadcast_to(z, shape), np.broadcast_to(load, shape)
+        base = float(cfg.design_day.sustained_load)
         # the requirement depends on (elevation, load) only: solve each distinct pair once
         # (the two directions of an edge share its elevations; most carry no climb load)
-        out = np.full(zf.size, np.nan)
-        ok = np.isfinite(zf) & np.isfinite(lf)
-        key = np.empty(int(ok.sum()), dtype=np.complex128)
-        key.real = zf[ok]
-        key.imag = lf[ok]
-        uniq, inv = np.unique(key, return_inverse=True)
-        cond = rq.design_conditions(uniq.real.copy(), cfg.design_day, params.reference)
-        cond = cond._replace(sustained_load=uniq.imag.copy())
-        out[ok] = np.asarray(rq.justified_aki(mix, params, cond).aki, dtype=float)[inv]
-        return out.reshape(z.shape)
+        inv, z_u, l_u = _distinct_elevation_loads(
+            zb.reshape(-1, zb.shape[-1]), lb.reshape(-1, lb.shape[-1]), base
+        )
+        cond = rq.design_conditions(z_u, cfg.design_day, params.reference)
+        cond = cond._replace(sustained_load=l_u)
+        solved = np.r_[np.asarray(rq.justified_aki(mix, params, cond).aki, dtype=float), np.nan]
+        out = solved[inv].reshape(zb.shape)
+        return out.reshape(np.shape(elevation_m)) if np.ndim(elevation_m) == 0 else out
 
     return required_aki
+
+
+def _distinct_elevation_loads(
+    z2: np.ndarray, load2: np.ndarray, base: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The distinct (elevation to :data:`ELEVATION_STEP_M`, max(load, base)) pairs of two
+    2-D arrays (any strides) and, per element (flattened), the index of its pair — ``len(z)``
+    for a non-finite elevation. Unloaded elements (most) are numbered through a table over
+    their elevation steps, without a sort; loaded ones by ``np.unique``."""
+    kz, lf, state, kmin, kmax = _elevation_steps(z2, load2, base)
+    n_base = int((state == 1).sum())
+    span = kmax - kmin + 1 if n_base else 0
+    inv = np.empty(kz.size, dtype=np.int64)
+    if span > 4 * kz.size + 1_000_000:  # elevations too spread for a table: sort them
+        state[state == 1] = 2
+        keys = np.zeros(0, dtype=np.int64)
+    else:
+        keys = _number_by_table(kz, state, kmin, span, inv)
+    loaded = np.flatnonzero(state == 2)
+    pair = np.empty(loaded.size, dtype=np.complex128)
+    pair.real = kz[loaded] * ELEVATION_STEP_M
+    pair.imag = lf[loaded]
+    uniq, inv2 = np.unique(pair, return_inverse=True)
+    inv[loaded] = keys.size + inv2
+    n_u = keys.size + uniq.size
+    inv[state == 0] = n_u
+    z_u = np.r_[keys * ELEVATION_STEP_M, uniq.real]
+    l_u = np.r_[np.full(keys.size, base), uniq.imag]
+    return inv, z_u, l_u
+
+
+@njit(cache=True, nogil=True)
+def _elevation_steps(z2, load2, base):
+    """Per element: elevation step rint(z / step), max(load, base), and state 0 (non-finite
+    elevation), 1 (load = base) or 2; and the range of steps of state 1."""
+    rows, cols = z2.shape
+    n = rows * cols
+    kz = np.zeros(n, dtype=np.int64)
+    lf = np.empty(n, dtype=np.float64)
+    state = np.zeros(n, dtype=np.int8)
+    kmin = np.iinfo(np.int64).max
+    kmax = np.iinfo(np.int64).min
+    i = 0
+    for r in range(rows):
+        for col in range(cols):
+            q = np.rint(z2[r, col] / ELEVATION_STEP_M)
+            ld = max(load2[r, col], base)
+            lf[i] = ld
+            if np.isfinite(q) and abs(q) < 1e15:
+                k = np.int64(q)
+                kz[i] = k
+                if ld == base:
+                    state[i] = 1
+                    kmin = min(kmin, k)
+                    kmax = max(kmax, k)
+                else:
+                    state[i] = 2
+            i += 1
+    return kz, lf, state, kmin, kmax
+
+
+@njit(cache=True, nogil=True)
+def _number_by_table(kz, state, kmin, span, inv):
+    """Number the distinct steps of state-1 elements in first-seen order (into ``inv``);
+    returns the steps in number order."""
+    table = np.full(span, -1, dtype=np.int64)
+    nu = 0
+    for i in range(kz.size):
+        if state[i] == 1:
+            t = kz[i] - kmin
+            if table[t] < 0:
+                table[t] = nu
+                nu += 1
+            inv[i] = table[t]
+    keys = np.empty(nu, dtype=np.int64)
+    for t in range(span):
+        if table[t] >= 0:
+            keys[table[t]] = t + kmin
+    return keys
 
 
 def derived_roads(ds, endpoints_xy: np.ndarray, grid_cells: int) -> gpd.GeoDataFrame:

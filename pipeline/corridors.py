@@ -380,8 +380,10 @@ def compute_corridors(
         destination weighted by its ``volume_l``, the station itself excluded.
     required_aki : callable
         ``required_aki(elevation_m, uphill_grade_pct, sustained_climb_m) -> ndarray`` [AKI],
-        vectorised: the fleet's requirement on an edge-direction (lower elevation → higher;
-        grade and sustained climb add a load increment).
+        vectorised and broadcasting: the fleet's requirement on an edge-direction (lower
+        elevation → higher; grade and sustained climb add a load increment). It is called once,
+        with elevations of shape (elevation bins, edge-directions) and grades and climbs of
+        shape (edge-directions,).
     params : CorridorParams, optional
     local_aki : float or ndarray (n_edges,), optional
         AKI of the top-up fuel along each edge [AKI]; default ``params.refill_aki`` or the
@@ -455,18 +457,16 @@ def compute_corridors(
     # every elevation bin in one call (a requirement that solves distinct values once then
     # shares them across bins)
     k = len(elev_cols)
-    elev = np.concatenate(
-        [_column(profiles, c, "profiles").astype(float)[ent_edge] for c in elev_cols]
-    )
-    rb = np.asarray(required_aki(elev, np.tile(grade, k), np.tile(sust, k)), dtype=float)
+    elev = np.stack([_column(profiles, c, "profiles").astype(float)[ent_edge] for c in elev_cols])
+    rb = np.asarray(required_aki(elev, grade, sust), dtype=float)  # (bins, nnz), broadcasting
     if rb.ndim == 0:
-        rb = np.full(k * nnz, float(rb))
-    if rb.shape != (k * nnz,):
+        rb = np.full((k, nnz), float(rb))
+    if rb.shape != (k, nnz):
         raise CorridorError(
-            f"required_aki returned shape {rb.shape}; expected ({k * nnz},), one value per "
-            "edge-direction and elevation"
+            f"required_aki returned shape {rb.shape}; expected ({k}, {nnz}), one value per "
+            "elevation bin and edge-direction"
         )
-    req = np.ascontiguousarray(rb.reshape(k, nnz).T) if k else np.zeros((nnz, 1))  # (nnz, bins)
+    req = np.ascontiguousarray(rb.T)  # (nnz, bins)
     req_nan = ~np.isfinite(req).all(axis=1)
     # NaN requirement → no deficit: −inf makes max(req − tank, 0) zero without a test
     req_clean = np.where(np.isfinite(req), req, -np.inf)

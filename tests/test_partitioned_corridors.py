@@ -242,5 +242,19 @@ def test_requirement_function_solves_each_elevation_and_load_once(tmp_path):
     exact = model(z)
     np.testing.assert_allclose(got, exact, rtol=0, atol=1e-4)
     assert not np.array_equal(got[:n], exact[:n])  # the rounding is real
+    # as compute_corridors calls it: elevation bins × entries, grades and climbs per entry
+    bins = np.stack([z, z + 0.004, z[::-1]])
+    got2 = requirement_function(cfg)(bins, g, c)
+    assert got2.shape == bins.shape
+    for b in range(3):
+        np.testing.assert_array_equal(got2[b], requirement_function(cfg)(bins[b], g, c))
+    np.testing.assert_array_equal(got2[0], got)
+    # elevations too spread for the step table (sorted instead), infinities, a scalar
+    wide = np.r_[z[:50], 5e7, -5e7, np.inf, -np.inf]
+    gw, cw = np.r_[g[:50], 0, 0, 0, 0], np.r_[c[:50], 0, 0, 0, 0]
+    got3 = requirement_function(cfg)(wide, gw, cw)
+    np.testing.assert_array_equal(got3[:50], got[:50])
+    assert np.isnan(got3[-2:]).all()
+    assert float(requirement_function(cfg)(z[0], g[0], c[0])) == got[0]
     assert np.isnan(got[-1]) and np.isfinite(got[:-1]).all()
     assert (got[n : n + 200 : 2] < got[n + 1 : n + 200 : 2]).all()  # the climb load raises it
