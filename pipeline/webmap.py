@@ -299,6 +299,19 @@ def format_value(value: Any) -> str:
     return str(value)
 
 
+def format_column(column: pd.Series) -> list[str]:
+    """:func:`format_value` of every cell of ``column``; a numeric or boolean column formats
+    each distinct value once."""
+    dtype = column.dtype
+    if pd.api.types.is_object_dtype(dtype) or not (
+        pd.api.types.is_numeric_dtype(dtype) or pd.api.types.is_bool_dtype(dtype)
+    ):
+        return [format_value(v) for v in column.tolist()]
+    codes, uniques = pd.factorize(column, use_na_sentinel=False)
+    texts = [format_value(v) for v in uniques.tolist()]
+    return [texts[k] for k in codes.tolist()]
+
+
 _LONE_SURROGATE = re.compile("[\ud800-\udfff]")
 
 
@@ -920,7 +933,7 @@ def _prepare_layer(
     popup_cols = [c for c, _ in layer.popup_fields]
     tip = [layer.tooltip_field] if layer.tooltip_field else []
     used = dict.fromkeys(popup_cols + list(layer.searchable_fields) + tip)
-    text = {c: [format_value(v) for v in gdf[c].tolist()] for c in used}
+    text = {c: format_column(gdf[c]) for c in used}
     drawn = np.flatnonzero(has_geom)
     # Vertices rounded, never simplified: the shapes are those of the input.
     rounded = shapely.to_geojson(shapely.transform(geoms[drawn], lambda c: np.round(c, decimals)))

@@ -34,6 +34,7 @@ from pipeline.webmap import (
     RawJSON,
     _leaflet_assets,
     build_map_html,
+    format_column,
     format_value,
     json_for_script,
 )
@@ -377,6 +378,30 @@ def test_popup_values_show_dash_for_missing(sample_html):
 )
 def test_format_value(value, text):
     assert format_value(value) == text
+
+
+@pytest.mark.parametrize(
+    "column",
+    [
+        pd.Series([1.0, np.nan, -0.0, 0.0, 70.12149, 1e-5, 87.0, 87.0, np.inf, 2.5e15]),
+        pd.Series([3, 3, -7, 0], dtype="int64"),
+        pd.Series([1, None, 3], dtype="Int64"),
+        pd.Series([True, False, True]),
+        pd.Series([1, True, 1.0, "1", None, np.nan, pd.NA], dtype=object),  # equal hashes
+        pd.Series(["a", "", " b "], dtype="string"),
+        pd.Series(pd.to_datetime(["2024-03-01 00:00", None, "2024-03-01 12:30"])),
+        pd.Series([], dtype=float),
+    ],
+)
+def test_format_column_equals_format_value_cell_by_cell(column):
+    assert format_column(column) == [format_value(v) for v in column.tolist()]
+
+
+def test_format_column_on_random_floats_with_repeats():
+    rng = np.random.default_rng(3)
+    v = rng.choice(np.r_[rng.normal(0, 1e3, 200), rng.normal(0, 1e-4, 50), np.nan], 5000)
+    col = pd.Series(v)
+    assert format_column(col) == [format_value(x) for x in col.tolist()]
 
 
 # ------------------------------------------------------------------ geometry and bounds ---
