@@ -224,11 +224,12 @@ class ExecutionConfig(_Frozen):
         description="Memory limit per local Dask worker (e.g. '4GB'); default: Dask's 'auto'.",
     )
     partition_sources: int = Field(
-        256,
+        1024,
         ge=1,
         description="Corridor sources per partition (sources are ordered spatially first). "
         "With trees rooted at the destinations each partition grows one tree per destination "
-        "within reach, so fewer, larger partitions mean fewer trees.",
+        "within reach, so fewer, larger partitions mean fewer trees; a partition holds one bit "
+        "per source on every road entry of its trees (1024 sources: 128 bytes per entry).",
     )
     partition_edges: int = Field(131072, ge=1, description="Road edges per edge-profile partition.")
     partition_stations: int = Field(

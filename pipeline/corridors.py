@@ -359,7 +359,7 @@ def compute_corridors(
     *,
     local_aki: float | np.ndarray | None = None,
     candidate_aki: ArrayLike | None = None,
-    sources_per_partition: int = 256,
+    sources_per_partition: int = 1024,
     executor: Any = None,
     tree_root: Literal["auto", "sources", "destinations"] = "auto",
 ) -> CorridorResult:
