@@ -558,6 +558,16 @@ def _first_of_equal_runs(bits, first, count, rev, h, order):
     return keep
 
 
+def _merged_ids(
+    uniq: np.ndarray, inv: np.ndarray, rep: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """After :func:`_merge_close` of ``uniq`` (sorted rows, ``inv`` the id of each vertex):
+    the sorted distinct merged coordinates and each vertex's id among them, i.e.
+    ``uniq[rep][inv]`` as (rows, ids) without sorting again."""
+    kept = _unique_sorted(rep)
+    return uniq[kept], np.searchsorted(kept, rep)[inv]
+
+
 def _unique_sorted(a: np.ndarray) -> np.ndarray:
     """Sorted unique values of a 1-D array (as ``np.unique``; a sort and a mask are many
     times faster than numpy 2's hash-based ``np.unique`` on a million integers)."""
@@ -1028,12 +1038,14 @@ def build_road_graph(
     keep = ~np.isin(lid, bad_lines)
     xy, lid = xy[keep], lid[keep]
 
-    # 3. Vertex snapping.
+    # 3. Vertex snapping. ``uniq`` (sorted) and ``cid`` (xy == uniq[cid]) follow xy until it
+    # changes; uniq may keep coordinates no vertex uses any more.
     uniq, inv = _unique_rows(xy)
     rep, merges = _merge_close(uniq, tol)
-    xy = uniq[rep][inv]
+    uniq, cid = _merged_ids(uniq, inv, rep)
+    xy = uniq[cid]
     keep = _drop_repeated(xy, lid)
-    xy, lid = xy[keep], lid[keep]
+    xy, lid, cid = xy[keep], lid[keep], cid[keep]
     counts = np.bincount(lid, minlength=n_lines)
     # Lines with at least one valid vertex but < 2 distinct ones are zero-length.
     stats["zero_length_dropped"] = int((counts == 1).sum())
@@ -1051,7 +1063,7 @@ def build_road_graph(
     remap = np.full(n_lines, -1, dtype=np.int64)
     remap[sel] = np.arange(sel.size)
     vkeep = line_keep[lid]
-    xy, lid = xy[vkeep], remap[lid[vkeep]]
+    xy, lid, cid = xy[vkeep], remap[lid[vkeep]], cid[vkeep]
     geoms = geoms[sel]
     line_row = part_row[sel]
     is_bridge = bridge_row[line_row]
@@ -1059,10 +1071,10 @@ def build_road_graph(
 
     endpoint_snaps = 0
     crossings_new = 0
+    changed = False  # vertices moved or inserted since the snapping
     bridge_skipped = 0
     if n_lines:
         starts, ends = _line_bounds(lid, n_lines)
-        uniq, cid = _unique_rows(xy)
         incid = _vertex_line_pairs(cid, lid, n_lines)
 
         # 5. Line ends on or near (not on a vertex of) another non-bridge line: join them.
@@ -1096,6 +1108,7 @@ def build_road_graph(
                 moved[end_cid[qi]] = qxy
                 xy = moved[cid]
                 xy, lid = _insert_vertices(xy, lid, n_lines, qj, qxy)
+                changed = True
                 endpoint_snaps = int(qi.size)
                 starts, ends = _line_bounds(lid, n_lines)
                 geoms = _lines_from_coords(xy, lid, n_lines)
@@ -1142,13 +1155,18 @@ def build_road_graph(
                 xy, lid = _insert_vertices(
                     xy, lid, n_lines, np.r_[li[new_i], lj[new_j]], np.r_[ixy[new_i], ixy[new_j]]
                 )
-        # Snap once more (crossing points next to existing vertices), drop repeats.
-        uniq, inv = _unique_rows(xy)
-        rep, merges2 = _merge_close(uniq, tol)
-        merges += merges2
-        xy = uniq[rep][inv]
-        keep = _drop_repeated(xy, lid)
-        xy, lid = xy[keep], lid[keep]
+                changed = True
+        # Snap once more (crossing points next to existing vertices), drop repeats. Without
+        # moved or new vertices it would change nothing: snapped vertices are all farther
+        # apart than the tolerance (each cluster merged whole).
+        if changed:
+            uniq, inv = _unique_rows(xy)
+            rep, merges2 = _merge_close(uniq, tol)
+            merges += merges2
+            uniq, cid = _merged_ids(uniq, inv, rep)
+            xy = uniq[cid]
+            keep = _drop_repeated(xy, lid)
+            xy, lid, cid = xy[keep], lid[keep], cid[keep]
 
     stats["snapped_vertex_merges"] = int(merges)
     stats["endpoint_snaps"] = int(endpoint_snaps)
@@ -1161,12 +1179,11 @@ def build_road_graph(
         ok_line = counts >= 2
         stats["zero_length_dropped"] += int(((counts < 2) & (counts > 0)).sum())
         vk = ok_line[lid]
-        xy, lid = xy[vk], lid[vk]
+        xy, lid, cid = xy[vk], lid[vk], cid[vk]
         counts = np.bincount(lid, minlength=n_lines)
         starts = np.r_[0, np.cumsum(counts)[:-1]]
         ends = np.cumsum(counts) - 1
         nv = lid.size
-        uniq, cid = _unique_rows(xy)
         is_end_v = np.zeros(nv, dtype=bool)
         is_end_v[starts[ok_line]] = True
         is_end_v[ends[ok_line]] = True
@@ -1195,7 +1212,7 @@ def build_road_graph(
         order = np.lexsort((vidx, piece))
         piece, vidx = piece[order], vidx[order]
         pid_u, pid = np.unique(piece, return_inverse=True)
-        pxy = xy[vidx]
+        pxy, pcid = xy[vidx], cid[vidx]
         piece_line = np.zeros(pid_u.size, dtype=np.int64)
         piece_line[pid] = lid[vidx]
         pgeoms = shapely.linestrings(pxy, indices=pid)
@@ -1220,8 +1237,10 @@ def build_road_graph(
     # 9. Nodes and edges.
     m = pgeoms.size
     if m:
-        first_pt, last_pt = pxy[pfirst], pxy[plast]
-        node_xy, inv = _unique_rows(np.r_[first_pt, last_pt])
+        # nodes: the distinct coordinates of piece ends, in uniq's (lexicographic) order
+        end_ids = np.r_[pcid[pfirst], pcid[plast]]
+        node_ids = _unique_sorted(end_ids)
+        node_xy, inv = uniq[node_ids], np.searchsorted(node_ids, end_ids)
         u, v = inv[:m], inv[m:]
     else:
         node_xy = np.zeros((0, 2))
