@@ -488,6 +488,14 @@ def _dedup_runs(xy: np.ndarray, first: np.ndarray, count: np.ndarray) -> np.ndar
     return keep
 
 
+def _line_geoms(xy: np.ndarray, starts: np.ndarray, ends: np.ndarray, ids: np.ndarray):
+    """LineStrings of the lines ``ids`` (repeats allowed), vertices xy[starts] … xy[ends]."""
+    ids = np.asarray(ids, dtype=np.int64)
+    if ids.size == 0:
+        return np.zeros(0, dtype=object)
+    return _lines_from_ranges(xy, starts[ids], ends[ids] - starts[ids] + 1)
+
+
 def _lines_from_ranges(xy: np.ndarray, first: np.ndarray, count: np.ndarray) -> np.ndarray:
     idx = np.repeat(first - np.r_[0, np.cumsum(count)[:-1]], count) + np.arange(count.sum())
     return shapely.linestrings(xy[idx], indices=np.repeat(np.arange(first.size), count))
@@ -640,22 +648,32 @@ def _segments_need_geos(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1):
     return abs(cross) <= _COLLINEAR_REL * np.hypot(ux, uy) * np.hypot(vx, vy)
 
 
-def _crossing_candidates(
-    xy: np.ndarray, starts: np.ndarray, ends: np.ndarray, active: np.ndarray
-) -> tuple[np.ndarray, np.ndarray]:
-    """Line pairs (i < j, both ``active``) that may meet somewhere other than at vertices of
-    both: the pairs with a segment pair for which :func:`_segments_need_geos` holds.
+@dataclass(frozen=True)
+class _SegmentGrid:
+    """The segments of some lines hashed into a uniform grid: ``seg`` (first vertex of each
+    segment in xy), ``seg_line``, and (cell key, segment) pairs sorted by key. Cell: twice the
+    90th percentile of segment extents; longer segments are registered piece by piece."""
 
-    Segments are hashed into a uniform grid (cell: twice the 90th percentile of segment
-    extents; longer segments are registered piece by piece), and the segments sharing a cell
-    are compared. Every pair of lines that crosses, overlaps or touches away from shared
-    vertices is among the result; most junction pairs (one shared end) are not. Vertices of
-    line l are ``xy[starts[l]] … xy[ends[l]]``."""
+    xy: np.ndarray
+    seg: np.ndarray
+    seg_line: np.ndarray
+    keys: np.ndarray
+    segs: np.ndarray
+    x0: float
+    y0: float
+    cell: float
+
+
+def _segment_grid(
+    xy: np.ndarray, starts: np.ndarray, ends: np.ndarray, lines: np.ndarray
+) -> _SegmentGrid | None:
+    """The grid of the segments of the lines selected by the mask ``lines`` (vertices of line
+    l: ``xy[starts[l]] … xy[ends[l]]``); None without segments."""
     xy = np.ascontiguousarray(xy, dtype=np.float64)
     seg_line = np.repeat(np.arange(starts.size), np.maximum(ends - starts, 0))
-    seg_line = seg_line[np.asarray(active, dtype=bool)[seg_line]]
-    if seg_line.size < 2:
-        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    seg_line = seg_line[np.asarray(lines, dtype=bool)[seg_line]]
+    if seg_line.size == 0:
+        return None
     seg = _segment_starts(starts, ends, seg_line)
     ext = np.maximum(np.abs(xy[seg + 1, 0] - xy[seg, 0]), np.abs(xy[seg + 1, 1] - xy[seg, 1]))
     lo = xy[np.r_[seg, seg + 1]].min(axis=0)
@@ -664,9 +682,108 @@ def _crossing_candidates(
     cell = max(cell, float(np.max(hi - lo)) / 2.0**20, 1e-9)
     keys, segs = _grid_register(xy, seg, lo[0], lo[1], cell)
     order = np.argsort(keys, kind="stable")
-    pair_keys = _cell_pairs(xy, seg, seg_line, keys[order], segs[order], np.int64(starts.size))
+    return _SegmentGrid(xy, seg, seg_line, keys[order], segs[order], lo[0], lo[1], cell)
+
+
+def _crossing_candidates(
+    xy: np.ndarray, starts: np.ndarray, ends: np.ndarray, active: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Line pairs (i < j, both ``active``) that may meet somewhere other than at vertices of
+    both: the pairs with a segment pair in one grid cell (:func:`_segment_grid`) for which
+    :func:`_segments_need_geos` holds. Every pair of lines that crosses, overlaps or touches
+    away from shared vertices is among the result; most junction pairs (one shared end) are
+    not."""
+    grid = _segment_grid(xy, starts, ends, active)
+    if grid is None:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    n = np.int64(starts.size)
+    flag = np.zeros(starts.size, dtype=np.bool_)
+    pair_keys = _cell_pairs(grid.xy, grid.seg, grid.seg_line, grid.keys, grid.segs, n, flag, 0)
     pair_keys = _unique_sorted(pair_keys)
-    return pair_keys // starts.size, pair_keys % starts.size
+    return pair_keys // n, pair_keys % n
+
+
+def _touching_candidates(
+    xy: np.ndarray, starts: np.ndarray, ends: np.ndarray, flagged: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Line pairs (i < j, at least one ``flagged``) that may touch anywhere, shared vertices
+    included: a superset of the pairs whose GEOS intersection is not empty."""
+    grid = _segment_grid(xy, starts, ends, np.ones(starts.size, dtype=bool))
+    if grid is None:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    n = np.int64(starts.size)
+    flag = np.asarray(flagged, dtype=np.bool_)
+    pair_keys = _cell_pairs(grid.xy, grid.seg, grid.seg_line, grid.keys, grid.segs, n, flag, 1)
+    pair_keys = _unique_sorted(pair_keys)
+    return pair_keys // n, pair_keys % n
+
+
+def _points_near_lines(
+    pts: np.ndarray,
+    xy: np.ndarray,
+    starts: np.ndarray,
+    ends: np.ndarray,
+    lines: np.ndarray,
+    tol: float,
+) -> tuple[np.ndarray, np.ndarray]:
+    """(point, line) pairs, sorted and unique, with a selected line (mask ``lines``) whose
+    segment lies within ``tol`` of the point (distance computed with a relative margin of
+    1e-9: a superset of GEOS ``dwithin``, which the caller applies to the pairs)."""
+    grid = _segment_grid(xy, starts, ends, lines)
+    if grid is None or len(pts) == 0:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    keys = _near_pairs(
+        np.ascontiguousarray(pts, dtype=np.float64),
+        grid.xy,
+        grid.seg,
+        grid.seg_line,
+        grid.keys,
+        grid.segs,
+        grid.x0,
+        grid.y0,
+        grid.cell,
+        float(tol),
+        np.int64(starts.size),
+    )
+    keys = _unique_sorted(keys)
+    return keys // starts.size, keys % starts.size
+
+
+@njit(cache=True, nogil=True)
+def _near_pairs(pts, xy, seg, seg_line, keys, segs, x0, y0, cell, tol, n_lines):
+    """Keys point·n + line for segments within ``tol`` (plus a relative 1e-9) of each point,
+    looked up in the grid cells the point's tol-box touches."""
+    out = np.empty(1024, dtype=np.int64)
+    m = 0
+    for p in range(pts.shape[0]):
+        px, py = pts[p, 0], pts[p, 1]
+        pad = tol + 1e-9 * (abs(px) + abs(py) + cell)
+        cx0 = int(np.floor((px - pad - x0) / cell))
+        cx1 = int(np.floor((px + pad - x0) / cell))
+        cy0 = int(np.floor((py - pad - y0) / cell))
+        cy1 = int(np.floor((py + pad - y0) / cell))
+        for cx in range(cx0, cx1 + 1):
+            for cy in range(cy0, cy1 + 1):
+                key = (cx + 2) * np.int64(1 << 22) + (cy + 2)
+                k = np.searchsorted(keys, key)
+                while k < keys.size and keys[k] == key:
+                    s = segs[k]
+                    k += 1
+                    a = seg[s]
+                    ax, ay, bx, by = xy[a, 0], xy[a, 1], xy[a + 1, 0], xy[a + 1, 1]
+                    dx, dy = bx - ax, by - ay
+                    d2 = dx * dx + dy * dy
+                    t = 0.0 if d2 == 0.0 else ((px - ax) * dx + (py - ay) * dy) / d2
+                    t = min(max(t, 0.0), 1.0)
+                    ex, ey = ax + t * dx - px, ay + t * dy - py
+                    if np.hypot(ex, ey) <= pad:
+                        if m == out.size:
+                            grown = np.empty(2 * out.size, dtype=np.int64)
+                            grown[:m] = out[:m]
+                            out = grown
+                        out[m] = p * n_lines + seg_line[s]
+                        m += 1
+    return out[:m]
 
 
 @njit(cache=True, nogil=True)
@@ -732,8 +849,35 @@ def _grid_register(xy, seg, x0, y0, cell):
 
 
 @njit(cache=True, nogil=True)
-def _cell_pairs(xy, seg, seg_line, keys, segs, n_lines):
-    """Keys i·n + j (i < j) of line pairs with a segment pair in one cell that needs GEOS."""
+def _segments_may_touch(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1):
+    """False when segments a and b certainly do not touch: disjoint boxes, or the ends of one
+    strictly on one side of the other's line (by a margin far above rounding)."""
+    if (
+        max(ax0, ax1) < min(bx0, bx1)
+        or max(bx0, bx1) < min(ax0, ax1)
+        or max(ay0, ay1) < min(by0, by1)
+        or max(by0, by1) < min(ay0, ay1)
+    ):
+        return False
+    d1, e1 = _orient(ax0, ay0, ax1, ay1, bx0, by0)
+    d2, e2 = _orient(ax0, ay0, ax1, ay1, bx1, by1)
+    if (d1 > _APART_REL * e1 and d2 > _APART_REL * e2) or (
+        d1 < -_APART_REL * e1 and d2 < -_APART_REL * e2
+    ):
+        return False
+    d3, e3 = _orient(bx0, by0, bx1, by1, ax0, ay0)
+    d4, e4 = _orient(bx0, by0, bx1, by1, ax1, ay1)
+    return not (
+        (d3 > _APART_REL * e3 and d4 > _APART_REL * e4)
+        or (d3 < -_APART_REL * e3 and d4 < -_APART_REL * e4)
+    )
+
+
+@njit(cache=True, nogil=True)
+def _cell_pairs(xy, seg, seg_line, keys, segs, n_lines, flag, mode):
+    """Keys i·n + j (i < j) of line pairs with a segment pair in one cell that needs GEOS:
+    mode 0, :func:`_segments_need_geos`; mode 1, one of the lines ``flag``-ged and
+    :func:`_segments_may_touch`."""
     out = np.empty(1024, dtype=np.int64)
     m = 0
     start = 0
@@ -751,10 +895,17 @@ def _cell_pairs(xy, seg, seg_line, keys, segs, n_lines):
                 if lj == li:
                     continue
                 b = seg[t]
-                if _segments_need_geos(
-                    xy[a, 0], xy[a, 1], xy[a + 1, 0], xy[a + 1, 1],
-                    xy[b, 0], xy[b, 1], xy[b + 1, 0], xy[b + 1, 1],
-                ):  # fmt: skip
+                if mode == 0:
+                    hit = _segments_need_geos(
+                        xy[a, 0], xy[a, 1], xy[a + 1, 0], xy[a + 1, 1],
+                        xy[b, 0], xy[b, 1], xy[b + 1, 0], xy[b + 1, 1],
+                    )  # fmt: skip
+                else:
+                    hit = (flag[li] or flag[lj]) and _segments_may_touch(
+                        xy[a, 0], xy[a, 1], xy[a + 1, 0], xy[a + 1, 1],
+                        xy[b, 0], xy[b, 1], xy[b + 1, 0], xy[b + 1, 1],
+                    )  # fmt: skip
+                if hit:
                     if m == out.size:
                         grown = np.empty(2 * out.size, dtype=np.int64)
                         grown[:m] = out[:m]
@@ -1049,7 +1200,6 @@ def build_road_graph(
     counts = np.bincount(lid, minlength=n_lines)
     # Lines with at least one valid vertex but < 2 distinct ones are zero-length.
     stats["zero_length_dropped"] = int((counts == 1).sum())
-    geoms = _lines_from_coords(xy, lid, n_lines)
 
     # 4. Exact duplicates.
     alive = counts >= 2
@@ -1064,7 +1214,6 @@ def build_road_graph(
     remap[sel] = np.arange(sel.size)
     vkeep = line_keep[lid]
     xy, lid, cid = xy[vkeep], remap[lid[vkeep]], cid[vkeep]
-    geoms = geoms[sel]
     line_row = part_row[sel]
     is_bridge = bridge_row[line_row]
     n_lines = sel.size
@@ -1080,24 +1229,24 @@ def build_road_graph(
         # 5. Line ends on or near (not on a vertex of) another non-bridge line: join them.
         if (~is_bridge).any():
             end_cid = _unique_sorted(np.r_[cid[starts], cid[ends]])
-            pts = shapely.points(uniq[end_cid])
-            targets = np.flatnonzero(~is_bridge)
-            tree = shapely.STRtree(geoms[targets])
-            if tol > 0:
-                qi, qj = tree.query(pts, predicate="dwithin", distance=tol)
-            else:
-                qi, qj = tree.query(pts, predicate="intersects")
-            qj = targets[qj]
+            # candidates from the segment grid, then GEOS's own predicate on each pair
+            qi, qj = _points_near_lines(uniq[end_cid], xy, starts, ends, ~is_bridge, tol)
             ok = ~_in_sorted(incid, end_cid[qi].astype(np.int64) * n_lines + qj)
             qi, qj = qi[ok], qj[ok]
+            pts = shapely.points(uniq[end_cid[qi]])
+            lines_q = _line_geoms(xy, starts, ends, qj)
+            exact = (
+                shapely.dwithin(pts, lines_q, tol) if tol > 0 else shapely.intersects(pts, lines_q)
+            )
+            qi, qj, pts, lines_q = qi[exact], qj[exact], pts[exact], lines_q[exact]
             if qi.size:
-                dist = shapely.distance(pts[qi], geoms[qj])
+                dist = shapely.distance(pts, lines_q)
                 order = np.lexsort((qj, dist, qi))
-                qi, qj, dist = qi[order], qj[order], dist[order]
-                firsts = np.r_[True, qi[1:] != qi[:-1]]
+                firsts = order[np.r_[True, qi[order][1:] != qi[order][:-1]]]
                 qi, qj, dist = qi[firsts], qj[firsts], dist[firsts]
+                pts, lines_q = pts[firsts], lines_q[firsts]
                 proj = shapely.line_interpolate_point(
-                    geoms[qj], shapely.line_locate_point(geoms[qj], pts[qi])
+                    lines_q, shapely.line_locate_point(lines_q, pts)
                 )
                 qxy = np.where(
                     dist[:, None] == 0.0, uniq[end_cid[qi]], shapely.get_coordinates(proj)
@@ -1111,7 +1260,6 @@ def build_road_graph(
                 changed = True
                 endpoint_snaps = int(qi.size)
                 starts, ends = _line_bounds(lid, n_lines)
-                geoms = _lines_from_coords(xy, lid, n_lines)
 
         # 6. Crossings between non-bridge lines. Most pairs of lines that touch only share
         # an end (a junction), which GEOS would find to be a vertex of both: only the pairs
@@ -1119,12 +1267,10 @@ def build_road_graph(
         pi, pj = _crossing_candidates(xy, starts, ends, ~is_bridge)
         # Bridges: count lines that meet a bridge away from its ends (left unconnected).
         if is_bridge.any():
-            tree = shapely.STRtree(geoms)
-            bq, bo = tree.query(geoms[is_bridge], predicate="intersects")
-            b_line = np.flatnonzero(is_bridge)[bq]
-            keep_b = (bo != b_line) & ~(is_bridge[bo] & (bo < b_line))  # each pair once
-            bi, bj = b_line[keep_b], bo[keep_b]
-            inter = shapely.intersection(geoms[bi], geoms[bj])
+            bi, bj = _touching_candidates(xy, starts, ends, is_bridge)
+            inter = shapely.intersection(
+                _line_geoms(xy, starts, ends, bi), _line_geoms(xy, starts, ends, bj)
+            )
             bxy, bk = shapely.get_coordinates(inter, return_index=True)
             if bk.size:
 
@@ -1137,7 +1283,9 @@ def build_road_graph(
                 np.logical_or.at(away, bk, ~at_end)
                 bridge_skipped = int(away.sum())
         if pi.size:
-            inter = shapely.intersection(geoms[pi], geoms[pj])
+            inter = shapely.intersection(
+                _line_geoms(xy, starts, ends, pi), _line_geoms(xy, starts, ends, pj)
+            )
             ixy, ik = shapely.get_coordinates(inter, return_index=True)
             if ik.size:
                 uniq2, cid2 = _unique_rows(xy)

@@ -655,3 +655,91 @@ def test_length_quantiles_match_a_sort_and_grouped_cumsum(seed):
     for g, w in zip(got, want, strict=True):
         np.testing.assert_array_equal(g, w)
     assert np.isnan(got[3][5]) and np.isfinite(got[3]).sum() > 300
+
+
+def _strtree_points_near(pts, xy, starts, ends, lines, tol):
+    """Reference: GEOS via STRtree (dwithin, or intersects at tol 0) over the selected lines."""
+    geoms = rg._lines_from_ranges(xy, starts, ends - starts + 1)
+    targets = np.flatnonzero(lines)
+    tree = shapely.STRtree(geoms[targets])
+    p = shapely.points(pts)
+    if tol > 0:
+        qi, qj = tree.query(p, predicate="dwithin", distance=tol)
+    else:
+        qi, qj = tree.query(p, predicate="intersects")
+    return qi.astype(np.int64), targets[qj].astype(np.int64)
+
+
+def _strtree_touching(xy, starts, ends, flagged):
+    lines = rg._lines_from_ranges(xy, starts, ends - starts + 1)
+    pi, pj = _touching_pairs(lines)
+    keep = flagged[pi] | flagged[pj]
+    return pi[keep].astype(np.int64), pj[keep].astype(np.int64)
+
+
+@pytest.mark.parametrize("make,seed", [(_lattice_polylines, 5), (_float_polylines, 6)])
+@pytest.mark.parametrize("tol", [0.0, 0.5, 40.0])
+def test_grid_searches_cover_geos_queries(make, seed, tol):
+    """GEOS (STRtree dwithin / intersects) as the reference: the grid's point-to-line and
+    touching-pair candidates include every pair GEOS finds."""
+    lines = np.array(make(seed), dtype=object)
+    xy, lid = shapely.get_coordinates(lines, return_index=True)
+    starts, ends = rg._line_bounds(lid, lines.size)
+    rng = np.random.default_rng(seed)
+    pts = np.r_[
+        xy[starts], xy[ends], xy[rng.integers(0, len(xy), 50)] + rng.normal(0, 0.3, (50, 2))
+    ]
+    pts = np.r_[pts, xy[starts[:20]] + [tol * 0.999, 0.0]]  # just inside the tolerance
+    sel = np.arange(lines.size) % 4 != 0
+    gi, gj = rg._points_near_lines(pts, xy, starts, ends, sel, tol)
+    ri, rj = _strtree_points_near(pts, xy, starts, ends, sel, tol)
+    got = set(zip(gi.tolist(), gj.tolist(), strict=True))
+    want = set(zip(ri.tolist(), rj.tolist(), strict=True))
+    assert len(want) > 20 and want <= got
+    assert len(got) <= len(want) + 0.05 * len(want) + 5  # few extra candidates for GEOS
+    flagged = np.arange(lines.size) % 7 == 0
+    ti, tj = rg._touching_candidates(xy, starts, ends, flagged)
+    ri, rj = _strtree_touching(xy, starts, ends, flagged)
+    assert set(zip(ri.tolist(), rj.tolist(), strict=True)) <= set(
+        zip(ti.tolist(), tj.tolist(), strict=True)
+    )
+    assert flagged[ti].any() and (flagged[ti] | flagged[tj]).all()
+
+
+def _messy_roads(seed):
+    """Lattice and random-walk lines, a few nudged off the lattice, repeats, reversals,
+    bridges and one-way lines: snapping, end joins, crossings and bridges all occur."""
+    rng = np.random.default_rng(seed)
+    lines = []
+    for _ in range(300):
+        k = int(rng.integers(2, 6))
+        if rng.random() < 0.5:
+            pts = rng.integers(0, 15, (k, 2)) * 100.0
+            pts = pts + rng.normal(0, 0.3, (k, 2)) * (rng.random() < 0.3)
+        else:
+            pts = np.array([X0, Y0]) + np.cumsum(rng.normal(0, 300, (k, 2)), axis=0) + 700
+        lines.append(LineString(pts))
+    lines += lines[:15] + [LineString(np.asarray(ln.coords)[::-1]) for ln in lines[15:25]]
+    n = len(lines)
+    return _gdf(lines, bridge=rng.random(n) < 0.05, oneway=rng.random(n) < 0.1)
+
+
+@pytest.mark.parametrize("seed,tol", [(0, 0.0), (1, 0.5), (2, 2.0)])
+def test_grid_searches_change_no_graph(seed, tol, monkeypatch):
+    """The graph equals the one built with GEOS STRtree queries for every search (end joins,
+    crossings, bridges), with snapping, duplicates and bridges present."""
+    gdf = _messy_roads(seed)
+    fast = rg.build_road_graph(gdf, snap_tolerance_m=tol)
+    monkeypatch.setattr(rg, "_crossing_candidates", _all_touching_pairs)
+    monkeypatch.setattr(rg, "_points_near_lines", _strtree_points_near)
+    monkeypatch.setattr(rg, "_touching_candidates", _strtree_touching)
+    ref = rg.build_road_graph(gdf, snap_tolerance_m=tol)
+    np.testing.assert_array_equal(fast.node_xy, ref.node_xy)
+    np.testing.assert_array_equal(fast.u, ref.u)
+    np.testing.assert_array_equal(fast.v, ref.v)
+    np.testing.assert_array_equal(fast.length_m, ref.length_m)
+    assert fast.stats == ref.stats
+    s = fast.stats
+    assert s["intersections_noded"] > 100 and s["duplicates_dropped"] > 0
+    assert s["bridge_crossings_skipped"] > 0
+    assert tol == 0 or (s["snapped_vertex_merges"] > 0 and s["endpoint_snaps"] > 0)
