@@ -686,29 +686,39 @@ def _segment_grid(
 
 
 def _crossing_candidates(
-    xy: np.ndarray, starts: np.ndarray, ends: np.ndarray, active: np.ndarray
+    xy: np.ndarray,
+    starts: np.ndarray,
+    ends: np.ndarray,
+    active: np.ndarray,
+    grid: _SegmentGrid | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Line pairs (i < j, both ``active``) that may meet somewhere other than at vertices of
     both: the pairs with a segment pair in one grid cell (:func:`_segment_grid`) for which
     :func:`_segments_need_geos` holds. Every pair of lines that crosses, overlaps or touches
     away from shared vertices is among the result; most junction pairs (one shared end) are
-    not."""
-    grid = _segment_grid(xy, starts, ends, active)
+    not. ``grid``: a grid of these lines (any superset of the active ones), else built."""
+    grid = grid if grid is not None else _segment_grid(xy, starts, ends, active)
     if grid is None:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     n = np.int64(starts.size)
-    flag = np.zeros(starts.size, dtype=np.bool_)
+    flag = ~np.asarray(active, dtype=np.bool_)
     pair_keys = _cell_pairs(grid.xy, grid.seg, grid.seg_line, grid.keys, grid.segs, n, flag, 0)
     pair_keys = _unique_sorted(pair_keys)
     return pair_keys // n, pair_keys % n
 
 
 def _touching_candidates(
-    xy: np.ndarray, starts: np.ndarray, ends: np.ndarray, flagged: np.ndarray
+    xy: np.ndarray,
+    starts: np.ndarray,
+    ends: np.ndarray,
+    flagged: np.ndarray,
+    grid: _SegmentGrid | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Line pairs (i < j, at least one ``flagged``) that may touch anywhere, shared vertices
-    included: a superset of the pairs whose GEOS intersection is not empty."""
-    grid = _segment_grid(xy, starts, ends, np.ones(starts.size, dtype=bool))
+    included: a superset of the pairs whose GEOS intersection is not empty. ``grid``: a grid
+    of all the lines, else built."""
+    if grid is None:
+        grid = _segment_grid(xy, starts, ends, np.ones(starts.size, dtype=bool))
     if grid is None:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     n = np.int64(starts.size)
@@ -725,11 +735,13 @@ def _points_near_lines(
     ends: np.ndarray,
     lines: np.ndarray,
     tol: float,
+    grid: _SegmentGrid | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """(point, line) pairs, sorted and unique, with a selected line (mask ``lines``) whose
     segment lies within ``tol`` of the point (distance computed with a relative margin of
-    1e-9: a superset of GEOS ``dwithin``, which the caller applies to the pairs)."""
-    grid = _segment_grid(xy, starts, ends, lines)
+    1e-9: a superset of GEOS ``dwithin``, which the caller applies to the pairs). ``grid``: a
+    grid of these lines (any superset of the selected ones), else built."""
+    grid = grid if grid is not None else _segment_grid(xy, starts, ends, lines)
     if grid is None or len(pts) == 0:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     keys = _near_pairs(
@@ -744,13 +756,14 @@ def _points_near_lines(
         grid.cell,
         float(tol),
         np.int64(starts.size),
+        np.asarray(lines, dtype=np.bool_),
     )
     keys = _unique_sorted(keys)
     return keys // starts.size, keys % starts.size
 
 
 @njit(cache=True, nogil=True)
-def _near_pairs(pts, xy, seg, seg_line, keys, segs, x0, y0, cell, tol, n_lines):
+def _near_pairs(pts, xy, seg, seg_line, keys, segs, x0, y0, cell, tol, n_lines, lines):
     """Keys point·n + line for segments within ``tol`` (plus a relative 1e-9) of each point,
     looked up in the grid cells the point's tol-box touches."""
     out = np.empty(1024, dtype=np.int64)
@@ -769,6 +782,8 @@ def _near_pairs(pts, xy, seg, seg_line, keys, segs, x0, y0, cell, tol, n_lines):
                 while k < keys.size and keys[k] == key:
                     s = segs[k]
                     k += 1
+                    if not lines[seg_line[s]]:
+                        continue
                     a = seg[s]
                     ax, ay, bx, by = xy[a, 0], xy[a, 1], xy[a + 1, 0], xy[a + 1, 1]
                     dx, dy = bx - ax, by - ay
@@ -876,8 +891,8 @@ def _segments_may_touch(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1):
 @njit(cache=True, nogil=True)
 def _cell_pairs(xy, seg, seg_line, keys, segs, n_lines, flag, mode):
     """Keys i·n + j (i < j) of line pairs with a segment pair in one cell that needs GEOS:
-    mode 0, :func:`_segments_need_geos`; mode 1, one of the lines ``flag``-ged and
-    :func:`_segments_may_touch`."""
+    mode 0, neither line ``flag``-ged and :func:`_segments_need_geos`; mode 1, one of the
+    lines ``flag``-ged and :func:`_segments_may_touch`."""
     out = np.empty(1024, dtype=np.int64)
     m = 0
     start = 0
@@ -896,7 +911,7 @@ def _cell_pairs(xy, seg, seg_line, keys, segs, n_lines, flag, mode):
                     continue
                 b = seg[t]
                 if mode == 0:
-                    hit = _segments_need_geos(
+                    hit = not (flag[li] or flag[lj]) and _segments_need_geos(
                         xy[a, 0], xy[a, 1], xy[a + 1, 0], xy[a + 1, 1],
                         xy[b, 0], xy[b, 1], xy[b + 1, 0], xy[b + 1, 1],
                     )  # fmt: skip
@@ -1225,12 +1240,21 @@ def build_road_graph(
     if n_lines:
         starts, ends = _line_bounds(lid, n_lines)
         incid = _vertex_line_pairs(cid, lid, n_lines)
+        grids: list[_SegmentGrid | None] = []
+
+        def grid_all() -> _SegmentGrid | None:
+            """The segment grid of every line as they stand (built once per version)."""
+            if not grids:
+                grids.append(_segment_grid(xy, starts, ends, np.ones(n_lines, dtype=bool)))
+            return grids[0]
 
         # 5. Line ends on or near (not on a vertex of) another non-bridge line: join them.
         if (~is_bridge).any():
             end_cid = _unique_sorted(np.r_[cid[starts], cid[ends]])
             # candidates from the segment grid, then GEOS's own predicate on each pair
-            qi, qj = _points_near_lines(uniq[end_cid], xy, starts, ends, ~is_bridge, tol)
+            qi, qj = _points_near_lines(
+                uniq[end_cid], xy, starts, ends, ~is_bridge, tol, grid=grid_all()
+            )
             ok = ~_in_sorted(incid, end_cid[qi].astype(np.int64) * n_lines + qj)
             qi, qj = qi[ok], qj[ok]
             pts = shapely.points(uniq[end_cid[qi]])
@@ -1260,14 +1284,15 @@ def build_road_graph(
                 changed = True
                 endpoint_snaps = int(qi.size)
                 starts, ends = _line_bounds(lid, n_lines)
+                grids.clear()  # the lines changed
 
         # 6. Crossings between non-bridge lines. Most pairs of lines that touch only share
         # an end (a junction), which GEOS would find to be a vertex of both: only the pairs
         # that may meet elsewhere are intersected.
-        pi, pj = _crossing_candidates(xy, starts, ends, ~is_bridge)
+        pi, pj = _crossing_candidates(xy, starts, ends, ~is_bridge, grid=grid_all())
         # Bridges: count lines that meet a bridge away from its ends (left unconnected).
         if is_bridge.any():
-            bi, bj = _touching_candidates(xy, starts, ends, is_bridge)
+            bi, bj = _touching_candidates(xy, starts, ends, is_bridge, grid=grid_all())
             inter = shapely.intersection(
                 _line_geoms(xy, starts, ends, bi), _line_geoms(xy, starts, ends, bj)
             )

@@ -374,7 +374,7 @@ def test_crossing_search_finds_every_pair_meeting_off_shared_vertices(make, seed
     }
 
 
-def _all_touching_pairs(xy, starts, ends, active):
+def _all_touching_pairs(xy, starts, ends, active, grid=None):
     """Reference candidate search: every touching pair of active lines, via GEOS."""
     lines = rg._lines_from_ranges(xy, starts, ends - starts + 1)
     pi, pj = _touching_pairs(lines)
@@ -657,7 +657,7 @@ def test_length_quantiles_match_a_sort_and_grouped_cumsum(seed):
     assert np.isnan(got[3][5]) and np.isfinite(got[3]).sum() > 300
 
 
-def _strtree_points_near(pts, xy, starts, ends, lines, tol):
+def _strtree_points_near(pts, xy, starts, ends, lines, tol, grid=None):
     """Reference: GEOS via STRtree (dwithin, or intersects at tol 0) over the selected lines."""
     geoms = rg._lines_from_ranges(xy, starts, ends - starts + 1)
     targets = np.flatnonzero(lines)
@@ -670,7 +670,7 @@ def _strtree_points_near(pts, xy, starts, ends, lines, tol):
     return qi.astype(np.int64), targets[qj].astype(np.int64)
 
 
-def _strtree_touching(xy, starts, ends, flagged):
+def _strtree_touching(xy, starts, ends, flagged, grid=None):
     lines = rg._lines_from_ranges(xy, starts, ends - starts + 1)
     pi, pj = _touching_pairs(lines)
     keep = flagged[pi] | flagged[pj]
