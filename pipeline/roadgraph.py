@@ -36,8 +36,14 @@ Noding rules (how lines become edges)
    away from its vertices (a T-junction, drawn exactly, short or long) is moved onto the
    nearest such line, which gets a vertex there.
 5. Crossings between two non-bridge lines (and the ends of a shared stretch) get a shared
-   vertex: shapely intersection on the intersecting pairs of an ``STRtree``. New vertices
-   within ``snap_tolerance_m`` of an existing one are merged into it (rule 2 again).
+   vertex: shapely (GEOS) intersection of every pair of lines that may meet away from
+   vertices of both. New vertices within ``snap_tolerance_m`` of an existing one are merged
+   into it (rule 2 again).
+
+The searches behind rules 4 and 5 and the bridge count use one uniform grid of all line
+segments (compiled): it proposes candidate pairs with a margin, and GEOS's own predicates
+(``dwithin``, ``intersects``) and intersections decide each of them, so the graph is the one
+an ``STRtree`` query of every pair would give (tested against it).
 6. Lines are cut into edges at every vertex that is (a) a line end of any line, (b) shared by
    two non-bridge lines, or (c) repeated within one non-bridge line. A bridge line is cut
    only at its own two ends: nothing joins it mid-span — a road crossing under it, sharing a
