@@ -612,18 +612,41 @@ def _orient(ax, ay, bx, by, cx, cy):
     return t1 - t2, abs(t1) + abs(t2)
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _boxes_apart(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1):
+    """True when the bounding boxes of segments a and b are disjoint."""
+    return (
+        max(ax0, ax1) < min(bx0, bx1)
+        or max(bx0, bx1) < min(ax0, ax1)
+        or max(ay0, ay1) < min(by0, by1)
+        or max(by0, by1) < min(ay0, ay1)
+    )
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _apart(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1):
+    """True when the ends of one segment lie strictly on one side of the other's line, by a
+    margin far above the rounding of the orientation determinants: the segments are apart."""
+    d1, e1 = _orient(ax0, ay0, ax1, ay1, bx0, by0)
+    d2, e2 = _orient(ax0, ay0, ax1, ay1, bx1, by1)
+    if (d1 > _APART_REL * e1 and d2 > _APART_REL * e2) or (
+        d1 < -_APART_REL * e1 and d2 < -_APART_REL * e2
+    ):
+        return True
+    d3, e3 = _orient(bx0, by0, bx1, by1, ax0, ay0)
+    d4, e4 = _orient(bx0, by0, bx1, by1, ax1, ay1)
+    return (d3 > _APART_REL * e3 and d4 > _APART_REL * e4) or (
+        d3 < -_APART_REL * e3 and d4 < -_APART_REL * e4
+    )
+
+
 @njit(cache=True, nogil=True)
 def _segments_need_geos(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1):
     """False when segments a and b certainly meet at a shared end alone or not at all — their
     boxes are disjoint; or they share exactly one end and are not collinear; or they share no
     end and the ends of one lie strictly on one side of the other's line (by a margin far above
     rounding) — True otherwise (the pair of lines goes to GEOS)."""
-    if (
-        max(ax0, ax1) < min(bx0, bx1)
-        or max(bx0, bx1) < min(ax0, ax1)
-        or max(ay0, ay1) < min(by0, by1)
-        or max(by0, by1) < min(ay0, ay1)
-    ):
+    if _boxes_apart(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1):
         return False
     s00 = ax0 == bx0 and ay0 == by0
     s01 = ax0 == bx1 and ay0 == by1
@@ -631,19 +654,7 @@ def _segments_need_geos(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1):
     s11 = ax1 == bx1 and ay1 == by1
     shared = s00 + s01 + s10 + s11
     if shared == 0:
-        d1, e1 = _orient(ax0, ay0, ax1, ay1, bx0, by0)
-        d2, e2 = _orient(ax0, ay0, ax1, ay1, bx1, by1)
-        if (d1 > _APART_REL * e1 and d2 > _APART_REL * e2) or (
-            d1 < -_APART_REL * e1 and d2 < -_APART_REL * e2
-        ):
-            return False
-        d3, e3 = _orient(bx0, by0, bx1, by1, ax0, ay0)
-        d4, e4 = _orient(bx0, by0, bx1, by1, ax1, ay1)
-        if (d3 > _APART_REL * e3 and d4 > _APART_REL * e4) or (
-            d3 < -_APART_REL * e3 and d4 < -_APART_REL * e4
-        ):
-            return False
-        return True
+        return not _apart(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1)
     if shared != 1:
         return True  # the same segment (either direction)
     # vectors from the shared end to the other ends
@@ -704,13 +715,7 @@ def _crossing_candidates(
     away from shared vertices is among the result; most junction pairs (one shared end) are
     not. ``grid``: a grid of these lines (any superset of the active ones), else built."""
     grid = grid if grid is not None else _segment_grid(xy, starts, ends, active)
-    if grid is None:
-        return np.zeros(0, np.int64), np.zeros(0, np.int64)
-    n = np.int64(starts.size)
-    flag = ~np.asarray(active, dtype=np.bool_)
-    pair_keys = _cell_pairs(grid.xy, grid.seg, grid.seg_line, grid.keys, grid.segs, n, flag, 0)
-    pair_keys = _unique_sorted(pair_keys)
-    return pair_keys // n, pair_keys % n
+    return _grid_pairs(grid, starts.size, ~np.asarray(active, dtype=np.bool_), 0)
 
 
 def _touching_candidates(
@@ -725,13 +730,19 @@ def _touching_candidates(
     of all the lines, else built."""
     if grid is None:
         grid = _segment_grid(xy, starts, ends, np.ones(starts.size, dtype=bool))
+    return _grid_pairs(grid, starts.size, np.asarray(flagged, dtype=np.bool_), 1)
+
+
+def _grid_pairs(
+    grid: _SegmentGrid | None, n_lines: int, flag: np.ndarray, mode: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """(i, j) line pairs, sorted and unique, of :func:`_cell_pairs` in ``mode``."""
     if grid is None:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
-    n = np.int64(starts.size)
-    flag = np.asarray(flagged, dtype=np.bool_)
-    pair_keys = _cell_pairs(grid.xy, grid.seg, grid.seg_line, grid.keys, grid.segs, n, flag, 1)
-    pair_keys = _unique_sorted(pair_keys)
-    return pair_keys // n, pair_keys % n
+    n = np.int64(n_lines)
+    keys = _cell_pairs(grid.xy, grid.seg, grid.seg_line, grid.keys, grid.segs, n, flag, mode)
+    keys = _unique_sorted(keys)
+    return keys // n, keys % n
 
 
 def _points_near_lines(
@@ -871,27 +882,11 @@ def _grid_register(xy, seg, x0, y0, cell):
 
 @njit(cache=True, nogil=True)
 def _segments_may_touch(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1):
-    """False when segments a and b certainly do not touch: disjoint boxes, or the ends of one
-    strictly on one side of the other's line (by a margin far above rounding)."""
-    if (
-        max(ax0, ax1) < min(bx0, bx1)
-        or max(bx0, bx1) < min(ax0, ax1)
-        or max(ay0, ay1) < min(by0, by1)
-        or max(by0, by1) < min(ay0, ay1)
-    ):
+    """False when segments a and b certainly do not touch: disjoint boxes, or
+    :func:`_apart`."""
+    if _boxes_apart(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1):
         return False
-    d1, e1 = _orient(ax0, ay0, ax1, ay1, bx0, by0)
-    d2, e2 = _orient(ax0, ay0, ax1, ay1, bx1, by1)
-    if (d1 > _APART_REL * e1 and d2 > _APART_REL * e2) or (
-        d1 < -_APART_REL * e1 and d2 < -_APART_REL * e2
-    ):
-        return False
-    d3, e3 = _orient(bx0, by0, bx1, by1, ax0, ay0)
-    d4, e4 = _orient(bx0, by0, bx1, by1, ax1, ay1)
-    return not (
-        (d3 > _APART_REL * e3 and d4 > _APART_REL * e4)
-        or (d3 < -_APART_REL * e3 and d4 < -_APART_REL * e4)
-    )
+    return not _apart(ax0, ay0, ax1, ay1, bx0, by0, bx1, by1)
 
 
 @njit(cache=True, nogil=True)
