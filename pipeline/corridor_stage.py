@@ -14,7 +14,6 @@ from typing import Any
 import geopandas as gpd
 import numpy as np
 import pandas as pd
-import shapely
 from numba import njit
 from rasterio.enums import Resampling
 
@@ -238,20 +237,21 @@ def partitioned_profiles(
 ) -> pd.DataFrame:
     """:func:`pipeline.roadgraph.edge_profiles` of every edge, computed in spatial partitions.
 
-    Edges are ordered along a Morton curve of their midpoints (so a partition touches few DEM
-    blocks) and cut into partitions of ``edges_per_partition``; each partition opens the DEM
-    itself and profiles its edges with :func:`pipeline.roadgraph.line_profiles`. A line's
-    profile depends on that line and the DEM alone, so the table equals the one-piece
-    calculation to the bit, in every execution mode."""
+    Edges are ordered along a Morton curve of the midpoints of their end nodes (so a
+    partition touches few DEM blocks) and cut into partitions of ``edges_per_partition``; each
+    partition opens the DEM itself and profiles its edges with
+    :func:`pipeline.roadgraph.line_profiles`. A line's profile depends on that line and the DEM
+    alone, so the table equals the one-piece calculation to the bit, in every execution
+    mode."""
     m = graph.n_edges
     if m == 0:
         with io.open_dem(dem) as ds:
             return edge_profiles(
                 graph, ds, spacing_m=spacing_m, climb_grade_threshold_pct=climb_grade_threshold_pct
             )
-    mid = shapely.get_coordinates(
-        shapely.line_interpolate_point(graph.geometry, 0.5, normalized=True)
-    )
+    # edges ordered by the middle of their end nodes (only the partitioning depends on it)
+    node_xy = np.asarray(graph.node_xy, dtype=float)
+    mid = 0.5 * (node_xy[np.asarray(graph.u)] + node_xy[np.asarray(graph.v)])
     parts = spatial_partitions(mid, edges_per_partition)
     shared = {
         "geometry": graph.geometry,

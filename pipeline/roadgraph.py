@@ -932,6 +932,22 @@ def _cell_pairs(xy, seg, seg_line, keys, segs, n_lines, flag, mode):
     return out[:m]
 
 
+def _entry_order(key: np.ndarray, lens: np.ndarray, eids: np.ndarray) -> np.ndarray:
+    """``np.lexsort((eids, lens, key))`` by one stable sort of ``key``: only runs of equal keys
+    (parallel edges, rare) are then ordered by length and edge id."""
+    order = np.argsort(key, kind="stable")
+    ks = key[order]
+    tied = np.zeros(ks.size, dtype=bool)
+    same = ks[1:] == ks[:-1]
+    tied[1:] |= same
+    tied[:-1] |= same
+    if tied.any():
+        pos = np.flatnonzero(tied)  # whole runs, contiguous in key order
+        sub = order[pos]
+        order[pos] = sub[np.lexsort((eids[sub], lens[sub], key[sub]))]
+    return order
+
+
 def _in_sorted(sorted_keys: np.ndarray, q: np.ndarray) -> np.ndarray:
     if sorted_keys.size == 0:
         return np.zeros(q.shape, dtype=bool)
@@ -1042,8 +1058,8 @@ def graph_from_edges(
     eids = np.r_[fwd_e, rev_e]
     isfwd = np.r_[np.ones(fwd_e.size, bool), np.zeros(rev_e.size, bool)]
     lens = length_m[eids]
-    # Keep the shortest edge per (row, col); order by row, col, then length.
-    order = np.lexsort((eids, lens, cols, rows))
+    # Keep the shortest edge per (row, col); order by row, col, then length, then edge id.
+    order = _entry_order(rows * np.int64(n) + cols, lens, eids)
     rows, cols, eids, isfwd, lens = rows[order], cols[order], eids[order], isfwd[order], lens[order]
     first = np.ones(rows.size, dtype=bool)
     first[1:] = (rows[1:] != rows[:-1]) | (cols[1:] != cols[:-1])

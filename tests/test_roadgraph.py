@@ -743,3 +743,16 @@ def test_grid_searches_change_no_graph(seed, tol, monkeypatch):
     assert s["intersections_noded"] > 100 and s["duplicates_dropped"] > 0
     assert s["bridge_crossings_skipped"] > 0
     assert tol == 0 or (s["snapped_vertex_merges"] > 0 and s["endpoint_snaps"] > 0)
+
+
+def test_entry_order_equals_a_four_key_lexsort():
+    """Reference: numpy's lexsort on (row·n + col, length, edge id), many parallel edges."""
+    rng = np.random.default_rng(11)
+    n = 40
+    rows, cols = rng.integers(0, n, 3000), rng.integers(0, n, 3000)
+    lens = rng.choice([5.0, 5.0, 7.5, 12.0], 3000)
+    eids = rng.permutation(3000)
+    key = rows * np.int64(n) + cols
+    np.testing.assert_array_equal(rg._entry_order(key, lens, eids), np.lexsort((eids, lens, key)))
+    key = np.arange(50)[::-1].astype(np.int64)  # no ties at all
+    np.testing.assert_array_equal(rg._entry_order(key, key * 1.0, key), np.argsort(key))
