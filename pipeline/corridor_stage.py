@@ -191,7 +191,7 @@ def road_graph_for(cfg: RunConfig, ds, stations: gpd.GeoDataFrame, towns: gpd.Ge
     """The routable road graph of a run: the road layer, or roads derived from the DEM between
     stations and towns when there is none. Returns (graph, description of the source)."""
     if cfg.inputs.roads is not None:
-        roads = io.read_vector(cfg.inputs.roads, what="roads")
+        roads = io.read_vector(cfg.inputs.roads, what="roads", arrow=True)
         source = "road layer"
     else:
         sx, sy = terrain.transform_points(stations["lon"], stations["lat"], "EPSG:4326", ds.crs)

@@ -632,11 +632,14 @@ def _check_tiff_blocks(ds: rasterio.io.DatasetReader, path: Path) -> None:
 # --------------------------------------------------------------------------------- vectors
 
 
-def read_vector(path: Path, *, what: str, layer: str | None = None) -> gpd.GeoDataFrame:
+def read_vector(
+    path: Path, *, what: str, layer: str | None = None, arrow: bool = False
+) -> gpd.GeoDataFrame:
     """Read a vector layer (any format GDAL reads) as a GeoDataFrame with a CRS.
 
     With several layers and no ``layer`` given, the layer named like ``what`` (spaces as
-    underscores) is read.
+    underscores) is read. ``arrow``: read through GDAL's Arrow stream (faster, and it lets
+    other threads run meanwhile); a layer it cannot read that way is read the usual way.
 
     Raises
     ------
@@ -647,7 +650,14 @@ def read_vector(path: Path, *, what: str, layer: str | None = None) -> gpd.GeoDa
     if not path.exists():
         raise InputFileError(f"{path}: {what} file not found")
     name = _pick_layer(path, layer, what.replace(" ", "_"), None)
-    gdf, _notes = _read_frame(path, name, what)
+    gdf = None
+    if arrow:
+        try:
+            gdf, _notes = _read_frame(path, name, what, use_arrow=True)
+        except InputFileError:
+            gdf = None
+    if gdf is None:
+        gdf, _notes = _read_frame(path, name, what)
     if not isinstance(gdf, gpd.GeoDataFrame) or gdf.crs is None:
         raise InputFileError(f"{path}: the {what} layer has no geometry or no CRS")
     return gdf

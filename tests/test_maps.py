@@ -1,4 +1,5 @@
-"""What each audience map shows at scale (pipeline.maps).
+"""What each audience map shows at scale (pipeline.maps), and how the maps and the corridors
+stage read large vector inputs (pipeline.io).
 
 Plain behaviour checks on invented lines: which rows a thinned layer keeps, and that its label
 says so.
@@ -12,6 +13,7 @@ import pandas as pd
 import pytest
 from shapely.geometry import LineString
 
+from pipeline.errors import InputFileError
 from pipeline.io import read_vector, read_vector_top
 from pipeline.maps import busiest, corridor_layer, road_layer
 
@@ -79,3 +81,21 @@ def test_reading_the_busiest_rows_without_the_ranking_column_keeps_the_first(tmp
     g.to_file(tmp_path / "r.gpkg")
     got, total = read_vector_top(tmp_path / "r.gpkg", what="roads", budget=4, by=("aadt",))
     assert total == 9 and got["road_class"].tolist() == ["c0", "c1", "c2", "c3"]
+
+
+def test_arrow_read_equals_a_plain_read_and_falls_back_on_a_bad_file(tmp_path):
+    # reference: the layer read back by GDAL the usual way (pyogrio, no Arrow)
+    g = lines({"aadt": np.arange(30.0), "road_class": [f"c{i % 3}" for i in range(30)]})
+    path = tmp_path / "roads.gpkg"
+    g.to_file(path)
+    got = read_vector(path, what="roads", arrow=True)
+    want = read_vector(path, what="roads")
+    pd.testing.assert_frame_equal(
+        pd.DataFrame(got.drop(columns="geometry")), pd.DataFrame(want.drop(columns="geometry"))
+    )
+    assert got.geometry.geom_equals_exact(want.geometry, tolerance=0).all()
+    assert got.crs == want.crs
+    bad = tmp_path / "bad.gpkg"
+    bad.write_bytes(b"not a geopackage")
+    with pytest.raises(InputFileError, match="bad.gpkg"):
+        read_vector(bad, what="roads", arrow=True)
