@@ -696,13 +696,16 @@ def read_vector_top(
     if total <= budget:
         return read_vector(path, what=what, layer=name), total
     keep = top_positions(attrs, budget, by)
-    gdf, _notes = _read_frame(
-        path, name, what, fids=attrs.index.to_numpy()[keep], fid_as_index=True
-    )
+    fids = attrs.index.to_numpy()[keep]
+    try:
+        gdf, _notes = _read_frame(path, name, what, fids=fids, fid_as_index=True)
+        # the driver may hand the features back in any order: restore the file's
+        gdf = gdf.loc[fids].reset_index(drop=True)
+    except (InputFileError, KeyError):
+        # a driver without reads by feature id: read the layer and keep the same rows
+        gdf = read_vector(path, what=what, layer=name).iloc[keep].reset_index(drop=True)
     if not isinstance(gdf, gpd.GeoDataFrame) or gdf.crs is None:
         raise InputFileError(f"{path}: the {what} layer has no geometry or no CRS")
-    # the driver may hand the features back in any order: restore the file's
-    gdf = gdf.loc[attrs.index.to_numpy()[keep]].reset_index(drop=True)
     return gdf, total
 
 

@@ -99,3 +99,26 @@ def test_arrow_read_equals_a_plain_read_and_falls_back_on_a_bad_file(tmp_path):
     bad.write_bytes(b"not a geopackage")
     with pytest.raises(InputFileError, match="bad.gpkg"):
         read_vector(bad, what="roads", arrow=True)
+
+
+def test_reading_the_busiest_rows_without_reads_by_id_falls_back(tmp_path, monkeypatch):
+    """A driver that cannot read by feature id: the whole layer is read, the same rows kept
+    (reference: thinning the layer read back by GDAL)."""
+    import pipeline.io as io_mod
+
+    g = lines({"aadt": np.r_[np.arange(20.0), np.arange(20.0)]})
+    path = tmp_path / "r.gpkg"
+    g.to_file(path)
+    plain = io_mod._read_frame
+
+    def no_fids(path, layer, what, **kw):
+        if "fids" in kw:
+            raise InputFileError(f"{path}: cannot read the {what} (no random reads)")
+        return plain(path, layer, what, **kw)
+
+    monkeypatch.setattr(io_mod, "_read_frame", no_fids)
+    got, total = read_vector_top(path, what="roads", budget=7, by=("aadt",))
+    want, _ = busiest(read_vector(path, what="roads"), 7, ("aadt",))
+    assert total == 40
+    assert got["aadt"].tolist() == want["aadt"].tolist()
+    assert got.geometry.geom_equals_exact(want.geometry.reset_index(drop=True), 0).all()
