@@ -439,19 +439,6 @@ def _transform_geoms(geoms: np.ndarray, src: CRS, dst: CRS) -> np.ndarray:
     return shapely.transform(geoms, f)
 
 
-def _lines_from_coords(xy: np.ndarray, line_id: np.ndarray, n_lines: int) -> np.ndarray:
-    """LineStrings from vertices sorted by line; lines with < 2 vertices become None."""
-    out = np.full(n_lines, None, dtype=object)
-    counts = np.bincount(line_id, minlength=n_lines)
-    keep_line = counts >= 2
-    keep_v = keep_line[line_id]
-    if keep_v.any():
-        ids = line_id[keep_v]
-        uniq, compact = np.unique(ids, return_inverse=True)
-        out[uniq] = shapely.linestrings(xy[keep_v], indices=compact)
-    return out
-
-
 def _drop_repeated(xy: np.ndarray, line_id: np.ndarray) -> np.ndarray:
     """Mask keeping a vertex unless it equals the previous vertex of the same line."""
     if xy.shape[0] == 0:
@@ -1485,8 +1472,7 @@ def _insert_vertices(
     if ins_l.size == 0:
         return xy, lid
     starts, ends = _line_bounds(lid, n_lines)
-    geoms = _lines_from_coords(xy, lid, n_lines)
-    t_ins = shapely.line_locate_point(geoms[ins_l], shapely.points(ins_xy))
+    t_ins = shapely.line_locate_point(_line_geoms(xy, starts, ends, ins_l), shapely.points(ins_xy))
     seg = np.hypot(xy[1:, 0] - xy[:-1, 0], xy[1:, 1] - xy[:-1, 1])
     seg = np.where(lid[1:] == lid[:-1], seg, 0.0)
     cum = np.r_[0.0, np.cumsum(seg)]
