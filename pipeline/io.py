@@ -64,6 +64,7 @@ __all__ = [
     "read_vector",
     "file_sha256",
     "read_vector_top",
+    "top_positions",
     "atomic_path",
     "write_text_atomic",
     "write_gpkg_layers",
@@ -663,13 +664,25 @@ def read_vector(
     return gdf
 
 
+def top_positions(frame: pd.DataFrame, budget: int, by: tuple[str, ...]) -> np.ndarray:
+    """Positions (ascending) of the ``budget`` largest rows of ``frame`` by the ``by`` columns
+    it has, in turn (NaN smallest, ties in row order); the first ``budget`` rows without any."""
+    total = len(frame)
+    cols = [c for c in by if c in frame.columns]
+    if not cols:
+        return np.arange(min(budget, total))
+    keys = [np.nan_to_num(frame[c].to_numpy(float), nan=-np.inf) for c in reversed(cols)]
+    order = np.lexsort((np.arange(total), *(-k for k in keys)))
+    return np.sort(order[:budget])
+
+
 def read_vector_top(
     path: Path, *, what: str, budget: int, by: tuple[str, ...]
 ) -> tuple[gpd.GeoDataFrame, int]:
     """At most ``budget`` features of a vector layer, the largest by the ``by`` columns (those
     the layer has, in turn; ties in file order), in file order; and the layer's row count.
 
-    The same rows as ``pipeline.maps.busiest(read_vector(path, what=what), budget, by)``, but
+    The rows :func:`top_positions` picks from the whole layer (as ``pipeline.maps.busiest``), but
     only the ranking columns of every row are decoded, and geometries only of the kept rows:
     a map of a state's roads reads a few thousand of its half-million lines.
 
@@ -678,8 +691,6 @@ def read_vector_top(
     InputFileError
         As :func:`read_vector`.
     """
-    from pipeline.maps import top_positions
-
     path = Path(path)
     if not path.exists():
         raise InputFileError(f"{path}: {what} file not found")

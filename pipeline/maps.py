@@ -10,10 +10,10 @@ from typing import Any
 
 import geopandas as gpd
 import numpy as np
-import pandas as pd
 
 from pipeline.cautions import CAUTIONS
 from pipeline.hillshade import Basemap
+from pipeline.io import top_positions
 from pipeline.webmap import (
     OKABE_ITO_NAMED,
     CategoryStyle,
@@ -110,18 +110,6 @@ def busiest(
     if total <= budget:
         return gdf, total
     return gdf.iloc[top_positions(gdf, budget, by)], total
-
-
-def top_positions(frame: pd.DataFrame, budget: int, by: tuple[str, ...]) -> np.ndarray:
-    """Positions (ascending) of the ``budget`` largest rows of ``frame`` by the ``by`` columns
-    it has, in turn (NaN smallest, ties in row order); the first ``budget`` rows without any."""
-    total = len(frame)
-    cols = [c for c in by if c in frame.columns]
-    if not cols:
-        return np.arange(min(budget, total))
-    keys = [np.nan_to_num(frame[c].to_numpy(float), nan=-np.inf) for c in reversed(cols)]
-    order = np.lexsort((np.arange(total), *(-k for k in keys)))
-    return np.sort(order[:budget])
 
 
 def _shown(name: str, short: str, gdf: gpd.GeoDataFrame, total: int, what: str) -> str:
