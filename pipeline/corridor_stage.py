@@ -63,7 +63,7 @@ def requirement_function(cfg: RunConfig):
     c = cfg.corridors
 
     def required_aki(elevation_m, uphill_grade_pct, sustained_climb_m):
-        z = np.atleast_1d(np.asarray(elevation_m, dtype=float))
+        z = np.asarray(elevation_m, dtype=float)
         g = np.asarray(uphill_grade_pct, dtype=float)
         climb = np.asarray(sustained_climb_m, dtype=float)
         # the load on the grade and climb's own (often smaller) shape, then broadcast as a view
@@ -78,14 +78,12 @@ def requirement_function(cfg: RunConfig):
         base = float(cfg.design_day.sustained_load)
         # the requirement depends on (elevation, load) only: solve each distinct pair once
         # (the two directions of an edge share its elevations; most carry no climb load)
-        inv, z_u, l_u = _distinct_elevation_loads(
-            zb.reshape(-1, zb.shape[-1]), lb.reshape(-1, lb.shape[-1]), base
-        )
+        cols = shape[-1] if shape else 1  # 2-D views for the compiled pass
+        inv, z_u, l_u = _distinct_elevation_loads(zb.reshape(-1, cols), lb.reshape(-1, cols), base)
         cond = rq.design_conditions(z_u, cfg.design_day, params.reference)
         cond = cond._replace(sustained_load=l_u)
         solved = np.r_[np.asarray(rq.justified_aki(mix, params, cond).aki, dtype=float), np.nan]
-        out = solved[inv].reshape(zb.shape)
-        return out.reshape(np.shape(elevation_m)) if np.ndim(elevation_m) == 0 else out
+        return solved[inv].reshape(shape)
 
     return required_aki
 
@@ -94,9 +92,9 @@ def _distinct_elevation_loads(
     z2: np.ndarray, load2: np.ndarray, base: float
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """The distinct (elevation to :data:`ELEVATION_STEP_M`, max(load, base)) pairs of two
-    2-D arrays (any strides) and, per element (flattened), the index of its pair — ``len(z)``
-    for a non-finite elevation. Unloaded elements (most) are numbered through a table over
-    their elevation steps, without a sort; loaded ones by ``np.unique``."""
+    2-D arrays (any strides) and, per element (flattened), the index of its pair — one past
+    the last pair for a non-finite elevation. Unloaded elements (most) are numbered through a
+    table over their elevation steps, without a sort; loaded ones by ``np.unique``."""
     kz, lf, state, kmin, kmax = _elevation_steps(z2, load2, base)
     n_base = int((state == 1).sum())
     span = kmax - kmin + 1 if n_base else 0

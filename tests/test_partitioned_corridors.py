@@ -256,5 +256,9 @@ def test_requirement_function_solves_each_elevation_and_load_once(tmp_path):
     np.testing.assert_array_equal(got3[:50], got[:50])
     assert np.isnan(got3[-2:]).all()
     assert float(requirement_function(cfg)(z[0], g[0], c[0])) == got[0]
+    # a scalar elevation broadcast against per-entry grades and climbs
+    one = requirement_function(cfg)(z[0], g[:5], c[:5])
+    assert one.shape == (5,)
+    np.testing.assert_array_equal(one, requirement_function(cfg)(np.full(5, z[0]), g[:5], c[:5]))
     assert np.isnan(got[-1]) and np.isfinite(got[:-1]).all()
     assert (got[n : n + 200 : 2] < got[n + 1 : n + 200 : 2]).all()  # the climb load raises it
