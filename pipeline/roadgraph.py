@@ -680,8 +680,8 @@ def _segment_grid(
         return None
     seg = _segment_starts(starts, ends, seg_line)
     ext = np.maximum(np.abs(xy[seg + 1, 0] - xy[seg, 0]), np.abs(xy[seg + 1, 1] - xy[seg, 1]))
-    lo = xy[np.r_[seg, seg + 1]].min(axis=0)
-    hi = xy[np.r_[seg, seg + 1]].max(axis=0)
+    ends_xy = xy[np.r_[seg, seg + 1]]
+    lo, hi = ends_xy.min(axis=0), ends_xy.max(axis=0)
     cell = 2.0 * float(np.percentile(ext, 90))
     cell = max(cell, float(np.max(hi - lo)) / 2.0**20, 1e-9)
     keys, segs = _grid_register(xy, seg, lo[0], lo[1], cell)
