@@ -270,6 +270,32 @@ class RoadGraph:
         df = pd.DataFrame({"u": self.u, "v": self.v, "length_m": self.length_m})
         return pd.concat([df, self.attributes.reset_index(drop=True)], axis=1)
 
+    def to_tables(self) -> dict[str, Any]:
+        """The graph as tables (edges with geometry, nodes, and a dict of the rest), from which
+        :meth:`from_tables` rebuilds it unchanged; used by the stage cache."""
+        edges = gpd.GeoDataFrame(self.edges_frame(), geometry=self.geometry, crs=self.crs)
+        nodes = pd.DataFrame({"x": self.node_xy[:, 0], "y": self.node_xy[:, 1]})
+        meta = {"crs": self.crs.to_wkt(), "stats": self.stats, "length_method": self.length_method}
+        return {"edges": edges, "nodes": nodes, "meta": meta}
+
+    @classmethod
+    def from_tables(cls, tables: Mapping[str, Any]) -> RoadGraph:
+        """The graph :meth:`to_tables` gave (adjacency and components are derived again)."""
+        e, meta = tables["edges"], tables["meta"]
+        attrs = pd.DataFrame(e.drop(columns=["u", "v", "length_m", e.geometry.name]))
+        return graph_from_edges(
+            tables["nodes"][["x", "y"]].to_numpy(float),
+            e["u"].to_numpy(np.int64),
+            e["v"].to_numpy(np.int64),
+            e["length_m"].to_numpy(float),
+            crs=CRS.from_wkt(meta["crs"]),
+            oneway=attrs["oneway"].to_numpy(bool),
+            geometry=np.asarray(e.geometry.array, dtype=object),
+            attributes=attrs,
+            stats=meta["stats"],
+            length_method=meta["length_method"],
+        )
+
 
 # ----------------------------------------------------------------------------------------------
 # Helpers

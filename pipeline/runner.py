@@ -1,12 +1,15 @@
-"""The stage runner: executes stages in order, stores each stage's artefacts, reuses a stage
-whose inputs, code and parameters are unchanged, and writes the run manifest.
+"""The stage runner: executes stages in order (or, when asked, independent stages at the same
+time), stores each stage's artefacts, reuses a stage whose inputs, code and parameters are
+unchanged, and writes the run manifest.
 
 A stage is a function ``(ctx, upstream) -> dict[str, artefact]``; an artefact is a
-GeoDataFrame, a DataFrame, or a JSON-able dict. Artefacts are stored under
-``<out>/.stages/<stage>/`` as GeoParquet/Parquet/JSON, written atomically; a stage's
-``key.json`` (written last) marks it complete. The cache key hashes: the stage name, the
-source code of the modules the stage declares, the package version, the stage's parameters
-(a slice of the config), the SHA-256 of its input files, and the keys of upstream stages.
+GeoDataFrame, a DataFrame, bytes, a JSON-able dict, or an object that turns itself into such
+tables (``to_tables()``) and back (``from_tables(tables)``), such as the road graph.
+Artefacts are stored under ``<out>/.stages/<stage>/`` as GeoParquet/Parquet/JSON, written
+atomically; a stage's ``key.json`` (written last) marks it complete. The cache key hashes:
+the stage name, the source code of the modules the stage declares, the package version, the
+stage's parameters (a slice of the config), the SHA-256 of its input files, and the keys of
+upstream stages.
 """
 
 from __future__ import annotations
@@ -17,6 +20,7 @@ import importlib
 import inspect
 import json
 import shutil
+import threading
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -32,7 +36,7 @@ from pipeline.config import RunConfig
 from pipeline.errors import InputFileError
 from pipeline.io import atomic_path, file_sha256, write_text_atomic
 
-__all__ = ["Stage", "StageContext", "RunResult", "run_stages", "Progress"]
+__all__ = ["Stage", "StageContext", "RunResult", "run_stages", "stage_needs", "Progress"]
 
 Progress = Callable[[str, float], None]
 
@@ -46,7 +50,8 @@ class Stage:
     name : short identifier (also the artefact folder name)
     func : ``func(ctx, upstream) -> dict[str, artefact]``; ``upstream`` maps each needed
         stage's name to its artefacts
-    needs : names of upstream stages whose artefacts the stage reads
+    needs : names of upstream stages whose artefacts the stage reads, or a function of the
+        config giving them (a stage may need more under some configs)
     params : the slice of the config the stage depends on (JSON-able)
     input_files : files the stage reads directly (hashed into the key)
     modules : dotted module names whose source is the stage's code version
@@ -55,7 +60,7 @@ class Stage:
 
     name: str
     func: Callable[[StageContext, dict[str, dict[str, Any]]], dict[str, Any]]
-    needs: tuple[str, ...] = ()
+    needs: tuple[str, ...] | Callable[[RunConfig], tuple[str, ...]] = ()
     params: Callable[[RunConfig], Any] = lambda cfg: None
     input_files: Callable[[RunConfig], Sequence[Path]] = lambda cfg: ()
     modules: tuple[str, ...] = ()
@@ -119,6 +124,10 @@ def _code_hash(modules: Sequence[str]) -> str:
     return h.hexdigest()
 
 
+#: File of an artefact stored as tables: its class and the tables' files (in a sub-folder).
+_OBJECT_SUFFIX = ".object.json"
+
+
 def _save(stage_dir: Path, artefacts: dict[str, Any]) -> list[str]:
     names = []
     for name, obj in artefacts.items():
@@ -134,6 +143,14 @@ def _save(stage_dir: Path, artefacts: dict[str, Any]) -> list[str]:
             with atomic_path(stage_dir / f"{name}.bin") as tmp:
                 tmp.write_bytes(obj)
             names.append(f"{name}.bin")
+        elif hasattr(obj, "to_tables") and hasattr(type(obj), "from_tables"):
+            # an object stored as tables (a road graph, say) and rebuilt from them on load
+            parts = _save(stage_dir / name, obj.to_tables())
+            kind = f"{type(obj).__module__}.{type(obj).__qualname__}"
+            write_text_atomic(
+                stage_dir / f"{name}{_OBJECT_SUFFIX}", json.dumps({"class": kind, "files": parts})
+            )
+            names.append(f"{name}{_OBJECT_SUFFIX}")
         else:
             write_text_atomic(stage_dir / f"{name}.json", json.dumps(obj, default=_json_default))
             names.append(f"{name}.json")
@@ -145,7 +162,15 @@ def _load(stage_dir: Path, names: Sequence[str]) -> dict[str, Any]:
     for fname in names:
         p = stage_dir / fname
         name, _, ext = fname.rpartition(".")
-        if ext == "geoparquet":
+        if fname.endswith(_OBJECT_SUFFIX):
+            name = fname[: -len(_OBJECT_SUFFIX)]
+            desc = json.loads(p.read_text(encoding="utf-8"))
+            module, _, cls = desc["class"].rpartition(".")
+            if not module.startswith("pipeline."):  # only the pipeline's own classes
+                raise ValueError(f"{p}: not a pipeline class: {desc['class']}")
+            kind = getattr(importlib.import_module(module), cls)
+            out[name] = kind.from_tables(_load(stage_dir / name, desc["files"]))
+        elif ext == "geoparquet":
             out[name] = gpd.read_parquet(p)
         elif ext == "parquet":
             out[name] = pd.read_parquet(p)
@@ -154,6 +179,23 @@ def _load(stage_dir: Path, names: Sequence[str]) -> dict[str, Any]:
         else:
             out[name] = json.loads(p.read_text(encoding="utf-8"))
     return out
+
+
+def stage_needs(stage: Stage, config: RunConfig) -> tuple[str, ...]:
+    """The upstream stages ``stage`` reads under ``config``."""
+    return tuple(stage.needs(config) if callable(stage.needs) else stage.needs)
+
+
+@dataclass
+class _Outcome:
+    """What running (or reusing) one stage gave."""
+
+    artefacts: dict[str, Any]
+    counts: dict[str, Any]
+    part_timings: dict[str, float]
+    started: float
+    ended: float
+    reused: bool
 
 
 def run_stages(
@@ -165,90 +207,123 @@ def run_stages(
     progress: Progress | None = None,
     log: Callable[[str], None] | None = None,
     executor: Any = None,
+    concurrent_stages: int = 1,
 ) -> RunResult:
-    """Run ``stages`` in order (each stage's ``needs`` must come earlier); ``executor`` runs
-    the partitions of the stages that split their work (None: in this process)."""
+    """Run ``stages`` (each stage's needs must come earlier in the list); ``executor`` runs
+    the partitions of the stages that split their work (None: in this process).
+
+    With ``concurrent_stages`` = 1 the stages run one after another in list order. With more,
+    a stage starts on a thread of its own as soon as every stage it needs is done, up to that
+    many at once (a road graph, say, is built while the terrain is sampled). A stage depends
+    only on its upstream artefacts, so the artefacts, counts and manifest are the same either
+    way; when stages fail, the error of the first failed stage in list order is raised once the
+    running ones have ended (none is started after a failure).
+    """
+    started = time.perf_counter()
     out_dir = Path(out_dir)
     cache_root = out_dir / ".stages"
-    progress = progress or (lambda label, frac: None)
-    log = log or (lambda msg: None)
-    artefacts: dict[str, dict[str, Any]] = {}
-    keys: dict[str, str] = {}
-    timings: dict[str, float] = {}
-    reused: list[str] = []
-    counts: dict[str, Any] = {}
-    part_timings: dict[str, float] = {}
-    input_hashes: dict[str, str] = {}
-    for p in sorted(cache_root.glob("*/.tmp-*")) if cache_root.exists() else []:
+    lock = threading.Lock()
+    progress = _serialised(progress or (lambda label, frac: None), lock)
+    log = _serialised(log or (lambda msg: None), lock)
+    for p in sorted(cache_root.glob("**/.tmp-*")) if cache_root.exists() else []:
         p.unlink(missing_ok=True)
+    # A stage's key depends on its inputs and its upstream keys, never on results: all keys
+    # (and every input file's hash) are known before the first stage runs.
+    needs = {s.name: stage_needs(s, config) for s in stages}
+    upstream = _transitive(stages, needs)
+    keys: dict[str, str] = {}
+    input_hashes: dict[str, str] = {}
+    stage_files: dict[str, list[Path]] = {}
     for stage in stages:
-        t0 = time.perf_counter()
+        missing = [n for n in needs[stage.name] if n not in keys]
+        if missing:
+            raise ValueError(f"stage {stage.name} needs {missing}, which do not come before it")
         files = [Path(f) for f in stage.input_files(config) if f is not None]
         for f in files:
             if str(f) not in input_hashes:
                 input_hashes[str(f)] = file_sha256(f) if f.is_file() else "missing"
+        stage_files[stage.name] = files
         key_src = {
             "stage": stage.name,
             "code": _code_hash(stage.modules),
             "params": stage.params(config),
             "inputs": {str(f): input_hashes[str(f)] for f in files},
-            "upstream": {n: keys[n] for n in stage.needs},
+            "upstream": {n: keys[n] for n in needs[stage.name]},
         }
-        key = hashlib.sha256(
+        keys[stage.name] = hashlib.sha256(
             json.dumps(key_src, sort_keys=True, default=_json_default).encode()
         ).hexdigest()
-        keys[stage.name] = key
-        stage_dir = cache_root / stage.name
-        key_file = stage_dir / "key.json"
+    outcomes: dict[str, _Outcome] = {}
+
+    def run_one(stage: Stage) -> _Outcome:
+        t0 = time.perf_counter()
+        # the counts of every stage upstream of this one, in list order
+        seen: dict[str, Any] = {}
+        for s in stages:
+            if s.name in upstream[stage.name]:
+                seen.update(outcomes[s.name].counts)
         ctx = StageContext(
             config,
             out_dir,
             today,
             progress,
             log,
-            stage_dir,
-            counts,
+            cache_root / stage.name,
+            dict(seen),
             input_hashes,
             executor,
-            part_timings,
+            {},
         )
+        key = keys[stage.name]
+        key_file = cache_root / stage.name / "key.json"
         if stage.cacheable and config.execution.reuse_unchanged_stages and key_file.exists():
             try:
                 meta = json.loads(key_file.read_text(encoding="utf-8"))
                 if meta.get("key") == key:
-                    artefacts[stage.name] = _load(stage_dir, meta["files"])
-                    counts.update(meta.get("counts", {}))
-                    reused.append(stage.name)
-                    timings[stage.name] = time.perf_counter() - t0
+                    loaded = _load(cache_root / stage.name, meta["files"])
                     log(f"{stage.name}: unchanged, reused")
-                    continue
+                    counts = meta.get("counts", {})
+                    return _Outcome(loaded, counts, {}, t0, time.perf_counter(), True)
             except (OSError, ValueError, KeyError):
                 pass  # a damaged cache entry is recomputed
         progress(stage.name, 0.0)
-        before = dict(counts)
         try:
-            result = stage.func(ctx, {n: artefacts[n] for n in stage.needs})
+            result = stage.func(ctx, {n: outcomes[n].artefacts for n in needs[stage.name]})
         except RasterioIOError as exc:  # a block GDAL cannot decode: the file is damaged
             raise InputFileError(
                 f"{config.inputs.dem}: cannot read the raster (stage {stage.name}); the file "
                 f"may be damaged: copy or download it again ({' '.join(str(exc).split())})"
             ) from None
-        artefacts[stage.name] = result
+        stage_counts = {k: v for k, v in ctx.counts.items() if seen.get(k) != v}
         if key_file.exists():
             key_file.unlink()  # a stored result of other inputs must not outlive this run
         # With reuse off nothing would ever read the stored artefacts: none are written.
         if stage.cacheable and config.execution.reuse_unchanged_stages:
-            names = _save(stage_dir, result)
-            stage_counts = {k: v for k, v in counts.items() if before.get(k) != v}
+            names = _save(cache_root / stage.name, result)
             write_text_atomic(
                 key_file,
                 json.dumps(
                     {"key": key, "files": names, "counts": stage_counts}, default=_json_default
                 ),
             )
-        timings[stage.name] = time.perf_counter() - t0
+        ended = time.perf_counter()
         progress(stage.name, 1.0)
-        log(f"{stage.name}: done in {timings[stage.name]:.2f} s")
+        log(f"{stage.name}: done in {ended - t0:.2f} s")
+        return _Outcome(result, stage_counts, dict(ctx.part_timings), t0, ended, False)
+
+    if concurrent_stages <= 1:
+        for stage in stages:
+            outcomes[stage.name] = run_one(stage)
+    else:
+        _run_concurrently(stages, needs, run_one, outcomes, concurrent_stages)
+    counts: dict[str, Any] = {}
+    timings: dict[str, float] = {}
+    part_timings: dict[str, float] = {}
+    for stage in stages:
+        o = outcomes[stage.name]
+        counts.update(o.counts)
+        timings[stage.name] = o.ended - o.started
+        part_timings.update(o.part_timings)
     manifest = {
         "altigrade_version": __version__,
         "run_name": config.name,
@@ -257,13 +332,93 @@ def run_stages(
         "config_file": str(config.source) if config.source else None,
         "inputs_sha256": input_hashes,
         "stage_keys": keys,
-        "stages_reused": reused,
+        "stages_reused": [s.name for s in stages if outcomes[s.name].reused],
         "timings_s": {k: round(v, 3) for k, v in {**timings, **part_timings}.items()},
+        # when each stage ran, from the start of the run [s] (stages may overlap)
+        "stage_spans_s": {
+            s.name: [
+                round(outcomes[s.name].started - started, 3),
+                round(outcomes[s.name].ended - started, 3),
+            ]
+            for s in stages
+        },
         "counts": counts,
         "execution": executor.describe() if executor is not None else {"mode": "local"},
         "package_versions": _package_versions(),
     }
+    artefacts = {s.name: outcomes[s.name].artefacts for s in stages}
     return RunResult(out_dir, artefacts, manifest)
+
+
+def _serialised(fn: Callable[..., None], lock: threading.Lock) -> Callable[..., None]:
+    """``fn`` called under ``lock`` (stages on several threads report through one display)."""
+
+    def call(*args: Any) -> None:
+        with lock:
+            fn(*args)
+
+    return call
+
+
+def _transitive(stages: Sequence[Stage], needs: dict[str, tuple[str, ...]]) -> dict[str, set]:
+    """Every stage's upstream stages, direct or not."""
+    out: dict[str, set] = {}
+    for s in stages:
+        out[s.name] = set(needs[s.name]).union(*(out.get(n, set()) for n in needs[s.name]))
+    return out
+
+
+def _run_concurrently(
+    stages: Sequence[Stage],
+    needs: dict[str, tuple[str, ...]],
+    run_one: Callable[[Stage], _Outcome],
+    outcomes: dict[str, _Outcome],
+    at_once: int,
+) -> None:
+    """Run each stage on a thread of its own once its needs are done, ``at_once`` at most.
+
+    The threads are daemons: an interrupted run does not wait for a long stage to end (every
+    artefact is written atomically, so nothing half-written is ever taken for a result)."""
+    changed = threading.Condition()
+    errors: dict[int, BaseException] = {}
+    running: set[str] = set()
+    waiting = list(enumerate(stages))
+
+    def work(i: int, stage: Stage) -> None:
+        try:
+            outcome = run_one(stage)
+        except BaseException as exc:  # handed to the run's thread below
+            with changed:
+                errors[i] = exc
+                running.discard(stage.name)
+                changed.notify_all()
+            return
+        with changed:
+            outcomes[stage.name] = outcome
+            running.discard(stage.name)
+            changed.notify_all()
+
+    with changed:
+        while True:
+            if not errors:
+                for item in list(waiting):
+                    i, stage = item
+                    if len(running) >= at_once:
+                        break
+                    if all(n in outcomes for n in needs[stage.name]):
+                        waiting.remove(item)
+                        running.add(stage.name)
+                        threading.Thread(
+                            target=work,
+                            args=(i, stage),
+                            name=f"altigrade-stage-{stage.name}",
+                            daemon=True,
+                        ).start()
+            if not running and (errors or not waiting):
+                break
+            changed.wait()
+    if errors:
+        raise errors[min(errors)]
 
 
 def _package_versions() -> dict[str, str]:

@@ -756,3 +756,30 @@ def test_entry_order_equals_a_four_key_lexsort():
     np.testing.assert_array_equal(rg._entry_order(key, lens, eids), np.lexsort((eids, lens, key)))
     key = np.arange(50)[::-1].astype(np.int64)  # no ties at all
     np.testing.assert_array_equal(rg._entry_order(key, key * 1.0, key), np.argsort(key))
+
+
+def test_graph_survives_the_stage_cache_unchanged(tmp_path):
+    """A road graph stored by the stage cache (GeoParquet and Parquet tables read back) is
+    rebuilt with every array, attribute and statistic equal, on messy roads with one-way
+    lines, bridges and missing road classes; a class outside the pipeline is refused."""
+    from pipeline import runner
+
+    gdf = _messy_roads(3)
+    gdf["road_class"] = np.where(np.arange(len(gdf)) % 3 == 0, None, "collector")
+    g = rg.build_road_graph(gdf, snap_tolerance_m=0.5)
+    names = runner._save(tmp_path, {"graph": g})
+    back = runner._load(tmp_path, names)["graph"]
+    assert isinstance(back, rg.RoadGraph) and back.crs == g.crs
+    for name in ("node_xy", "u", "v", "length_m", "entry_edge", "entry_forward", "component"):
+        np.testing.assert_array_equal(getattr(back, name), getattr(g, name))
+    assert (back.adjacency != g.adjacency).nnz == 0
+    np.testing.assert_array_equal(back.adjacency.indices, g.adjacency.indices)
+    assert shapely.equals_exact(back.geometry, g.geometry, tolerance=0).all()
+    assert back.attributes.equals(g.attributes)
+    assert back.stats == g.stats and back.length_method == g.length_method
+    assert g.attributes["oneway"].any() and g.attributes["bridge"].any()
+    # only the pipeline's own classes are rebuilt from a cache folder
+    desc = tmp_path / names[0]
+    desc.write_text(desc.read_text().replace("pipeline.roadgraph.RoadGraph", "os.system"))
+    with pytest.raises(ValueError, match="not a pipeline class"):
+        runner._load(tmp_path, names)

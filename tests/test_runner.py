@@ -115,3 +115,111 @@ def test_reuse_off_stores_nothing_and_drops_an_older_key(tmp_path):
     CALLS.clear()
     _run(tmp_path, _cfg(tmp_path))
     assert CALLS == ["first", "second"]
+
+
+# ------------------------------------------------------------------ stages at the same time
+def _diamond(log: list, events: dict):
+    """``root`` → (``slow``, ``fast``) → ``join``; ``slow`` waits until ``fast`` has started,
+    which only a run that overlaps them lets happen."""
+
+    def root(ctx, up):
+        log.append("root")
+        ctx.counts["root_n"] = 1
+        return {"meta": {"v": 1}}
+
+    def slow(ctx, up):
+        log.append("slow")
+        overlapped = events["fast_started"].wait(timeout=20)
+        ctx.counts["slow_saw_fast"] = overlapped
+        return {"meta": {"v": up["root"]["meta"]["v"] + 1}}
+
+    def fast(ctx, up):
+        events["fast_started"].set()
+        log.append("fast")
+        ctx.counts["fast_n"] = 2
+        return {"meta": {"v": up["root"]["meta"]["v"] * 10}}
+
+    def join(ctx, up):
+        log.append("join")
+        assert ctx.counts["root_n"] == 1 and ctx.counts["fast_n"] == 2  # upstream counts seen
+        return {"meta": {"v": up["slow"]["meta"]["v"] + up["fast"]["meta"]["v"]}}
+
+    return [
+        Stage("root", root),
+        Stage("slow", slow, needs=("root",)),
+        Stage("fast", fast, needs=lambda c: ("root",)),  # needs may depend on the config
+        Stage("join", join, needs=("slow", "fast")),
+    ]
+
+
+def test_independent_stages_overlap_and_give_the_same_run(tmp_path):
+    import threading
+
+    manifests = {}
+    for at_once in (1, 4):
+        log: list = []
+        events = {"fast_started": threading.Event()}
+        if at_once == 1:
+            events["fast_started"].set()  # one after another, slow would wait forever
+        r = run_stages(
+            _diamond(log, events),
+            _cfg(tmp_path),
+            tmp_path / f"out{at_once}",
+            today=dt.date(2026, 12, 1),
+            concurrent_stages=at_once,
+        )
+        assert r.artefacts["join"]["meta"] == {"v": 12}
+        assert log[0] == "root" and log[-1] == "join"
+        manifests[at_once] = r.manifest
+    assert manifests[1]["counts"] == manifests[4]["counts"]
+    assert list(manifests[4]["counts"]) == ["root_n", "slow_saw_fast", "fast_n"]  # list order
+    assert manifests[1]["stage_keys"] == manifests[4]["stage_keys"]
+    spans = manifests[4]["stage_spans_s"]
+    assert spans["fast"][0] < spans["slow"][1] and spans["slow"][0] < spans["fast"][1]
+    assert spans["join"][0] >= max(spans["slow"][1], spans["fast"][1])
+
+
+def test_a_failed_stage_stops_the_run_with_the_first_error_in_list_order(tmp_path):
+    import threading
+
+    started = []
+
+    def ok(ctx, up):
+        started.append("ok")
+        return {}
+
+    def bad(message, wait=None):
+        def fn(ctx, up):
+            started.append(message)
+            if wait is not None:
+                wait.wait(timeout=20)
+            raise ValueError(message)
+
+        return fn
+
+    second_failed = threading.Event()
+
+    def later_bad(ctx, up):
+        started.append("later")
+        try:
+            raise ValueError("later")
+        finally:
+            second_failed.set()
+
+    stages = [
+        Stage("a", ok),
+        Stage("b", bad("first", wait=second_failed), needs=("a",)),
+        Stage("c", later_bad, needs=("a",)),
+        Stage("d", ok, needs=("c",)),
+    ]
+    with pytest.raises(ValueError, match="first"):
+        run_stages(
+            stages, _cfg(tmp_path), tmp_path / "o", today=dt.date(2026, 12, 1), concurrent_stages=4
+        )
+    assert sorted(started) == ["first", "later", "ok"]  # d never started
+
+
+def test_a_stage_listed_before_its_needs_is_refused(tmp_path):
+    stages = [Stage("late", lambda ctx, up: {}, needs=("early",)), Stage("early", _first)]
+    with pytest.raises(ValueError, match="late needs"):
+        run_stages(stages, _cfg(tmp_path), tmp_path / "o", today=dt.date(2026, 12, 1))
