@@ -197,10 +197,11 @@ class ExecutionConfig(_Frozen):
 
     mode: Literal["local", "threads", "dask"] = Field(
         "local",
-        description="'local': partitions run one after another in this process; 'threads': "
-        "on a pool of threads; 'dask': as tasks on a Dask cluster (the scheduler at "
-        "execution.scheduler, or a local cluster of worker processes on 127.0.0.1). Results "
-        "are identical in every mode.",
+        description="'local': stages and their partitions run one after another in this "
+        "process; 'threads': partitions on a pool of threads; 'dask': as tasks on a Dask "
+        "cluster (the scheduler at execution.scheduler, or a local cluster of worker processes "
+        "on 127.0.0.1). In 'threads' and 'dask' independent stages also overlap (the road "
+        "graph is built while the terrain is sampled). Results are identical in every mode.",
     )
     workers: int | None = Field(
         None,

@@ -1,4 +1,5 @@
-"""The corridors stage: road graph, edge profiles, flows of sub-standard fuel and their risk.
+"""The road stages — road graph, edge profiles — and the corridors stage: flows of
+sub-standard fuel and their risk.
 
 Kept apart from ``stages.py`` because it is the largest stage; orchestration only — the
 calculation is in :mod:`pipeline.roadgraph`, :mod:`pipeline.corridors` and
@@ -39,6 +40,10 @@ __all__ = [
     "partitioned_profiles",
     "requirement_function",
     "road_graph_for",
+    "road_graph_needs",
+    "road_graph_stage",
+    "road_graph_used",
+    "road_profiles_stage",
 ]
 
 
@@ -273,36 +278,78 @@ def partitioned_profiles(
     return out
 
 
-def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
-    """Adds ``export_risk_l_aki_per_month``, ``fuel_share_in_deficit``, ``corridor_status``,
-    ``corridor_required_aki``, ``road_snap_m``; makes the ``corridors`` lines (graph CRS)."""
+def _towns(cfg: RunConfig) -> gpd.GeoDataFrame | None:
+    return io.read_vector(cfg.inputs.towns, what="towns") if cfg.inputs.towns else None
+
+
+def road_graph_needs(cfg: RunConfig) -> tuple[str, ...]:
+    """Stages the road graph needs: the station table alone with a road layer; the stations
+    placed on the DEM (terrain) when roads are derived between them."""
+    return ("ingest",) if cfg.inputs.roads is not None else ("terrain",)
+
+
+def road_graph_used(cfg: RunConfig) -> bool:
+    """Whether a run routes on roads: for the corridors, or for the inspectors' itineraries."""
+    plans = cfg.inspection.enabled and cfg.inputs.inspector_bases is not None
+    return cfg.corridors.enabled or plans
+
+
+def road_graph_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Makes the routable ``graph`` (:class:`pipeline.roadgraph.RoadGraph`): from the road
+    layer, or derived over the DEM between the stations placed on it and the towns."""
     cfg: RunConfig = ctx.config
-    st = up["compliance"]["stations"].copy()
-    cc = cfg.corridors
-    if not cc.enabled or len(st) == 0:
-        return {"stations": st}
-    towns = io.read_vector(cfg.inputs.towns, what="towns") if cfg.inputs.towns else None
-    if cc.destinations == "towns" and towns is None:
-        raise InputFileError("corridors.destinations = 'towns' needs inputs.towns")
-    if towns is not None and cc.destinations == "towns" and "population" not in towns.columns:
-        raise InputFileError(f"{cfg.inputs.towns}: the towns layer needs a 'population' column")
+    if not road_graph_used(cfg):
+        return {"graph": None}
+    stations = up["ingest" if cfg.inputs.roads is not None else "terrain"]["stations"]
+    towns = _towns(cfg) if cfg.inputs.roads is None else None
     with io.open_dem(cfg.inputs.dem) as ds:
-        t0 = time.perf_counter()
-        graph, source = road_graph_for(cfg, ds, st, towns)
-        timings = {"road_graph": time.perf_counter() - t0}
-        ctx.progress("corridors", 0.1)
+        graph, source = road_graph_for(cfg, ds, stations, towns)
+    ctx.counts["road_graph"] = {
+        k: v for k, v in graph.stats.items() if not isinstance(v, dict | list)
+    }
+    ctx.counts["road_source"] = source
+    return {"graph": graph}
+
+
+def road_profiles_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Makes ``profiles``: every edge's elevation profile over the DEM
+    (:func:`partitioned_profiles`, one row per edge in edge order)."""
+    cfg: RunConfig = ctx.config
+    graph = up["road_graph"]["graph"]
+    if graph is None or not cfg.corridors.enabled:
+        return {"profiles": None}
+    with io.open_dem(cfg.inputs.dem) as ds:
         spacing_m = profile_spacing_m(graph, ds)
     profiles = partitioned_profiles(
         graph,
         cfg.inputs.dem,
         spacing_m=spacing_m,
-        climb_grade_threshold_pct=cc.climb_grade_threshold_pct,
+        climb_grade_threshold_pct=cfg.corridors.climb_grade_threshold_pct,
         edges_per_partition=cfg.execution.partition_edges,
         executor=ctx.executor,
     )
-    timings["edge_profiles"] = time.perf_counter() - t0 - timings["road_graph"]
     ctx.counts["edge_profile_partitions"] = int(profiles.attrs.get("partitions", 1))
-    ctx.progress("corridors", 0.4)
+    return {"profiles": profiles.reset_index(drop=True)}
+
+
+def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Adds ``export_risk_l_aki_per_month``, ``fuel_share_in_deficit``, ``corridor_status``,
+    ``corridor_required_aki``, ``road_snap_m``; makes the ``corridors`` lines (graph CRS).
+    Uses the ``road_graph`` and ``road_profiles`` stages."""
+    cfg: RunConfig = ctx.config
+    st = up["compliance"]["stations"].copy()
+    cc = cfg.corridors
+    if not cc.enabled or len(st) == 0:
+        return {"stations": st}
+    towns = _towns(cfg)
+    if cc.destinations == "towns" and towns is None:
+        raise InputFileError("corridors.destinations = 'towns' needs inputs.towns")
+    if towns is not None and cc.destinations == "towns" and "population" not in towns.columns:
+        raise InputFileError(f"{cfg.inputs.towns}: the towns layer needs a 'population' column")
+    t0 = time.perf_counter()
+    graph = up["road_graph"]["graph"]
+    profiles = up["road_profiles"]["profiles"]
+    timings = {}
     sx, sy = terrain.transform_points(st["lon"], st["lat"], "EPSG:4326", graph.crs)
     node, dist, snapped = snap_points(graph, np.column_stack([sx, sy]), cc.snap_distance_m)
     vol = (
@@ -371,10 +418,6 @@ def corridors_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     ctx.part_timings.update({f"corridors/{k}": v for k, v in timings.items()})
     ctx.log("corridors: " + ", ".join(f"{k} {v:.2f} s" for k, v in timings.items()))
     lines = corridor_lines(graph, res)
-    ctx.counts["road_graph"] = {
-        k: v for k, v in graph.stats.items() if not isinstance(v, dict | list)
-    }
-    ctx.counts["road_source"] = source
     ctx.counts["corridor_edges"] = int(len(lines))
     ctx.counts["stations_not_on_roads"] = int((~snapped).sum())
     return {"stations": st, "corridors": lines}

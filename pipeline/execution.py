@@ -20,9 +20,11 @@ Dask Development Team (2016), "Dask: Library for dynamic task scheduling", dask.
 
 from __future__ import annotations
 
+import ctypes
 import importlib
 import logging
 import os
+import sys
 import threading
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
@@ -32,7 +34,7 @@ from typing import Any
 from pipeline.config import ExecutionConfig
 from pipeline.errors import ConfigError
 
-__all__ = ["Executor", "make_executor"]
+__all__ = ["Executor", "make_executor", "share_one_malloc_arena"]
 
 
 class Executor:
@@ -55,7 +57,11 @@ class Executor:
 
     def warm_up(self) -> None:
         """Start connecting to (or starting) the Dask cluster in the background, so that its
-        start-up overlaps the run's first stages; :meth:`map` waits for it. No-op otherwise."""
+        start-up overlaps the run's first stages; :meth:`map` waits for it. Where stages
+        overlap, the process's threads are also set to share one malloc arena
+        (:func:`share_one_malloc_arena`)."""
+        if self.overlaps_stages:
+            share_one_malloc_arena()
         if self.mode != "dask" or self._client is not None or self._starting is not None:
             return
 
@@ -77,6 +83,19 @@ class Executor:
         if self.mode == "dask" and self._client is not None:
             return max(1, len(self._client.scheduler_info().get("workers", {})))
         return self.config.workers or os.cpu_count() or 1
+
+    @property
+    def overlaps_stages(self) -> bool:
+        """Whether independent stages run at the same time (every mode but ``local``)."""
+        return self.mode != "local"
+
+    @property
+    def concurrent_stages(self) -> int:
+        """How many stages may run at once: two where stages overlap — the run has two long
+        independent chains (terrain → fleet, and road graph → edge profiles); more stage
+        threads only contend for the interpreter (measured on the state scenario) — else one.
+        """
+        return 2 if self.overlaps_stages else 1
 
     def map(
         self, fn: Callable[..., Any], items: Sequence[Any], *, shared: dict[str, Any] | None = None
@@ -201,6 +220,28 @@ class Executor:
         self._client = Client(self._cluster, timeout=timeout)
         # import the pipeline in every worker now (seconds each), not inside the first task
         self._client.run(importlib.import_module, "pipeline.stages")
+
+
+#: mallopt parameter number of glibc's M_ARENA_MAX (malloc.h).
+_M_ARENA_MAX = -8
+
+
+def share_one_malloc_arena() -> bool:
+    """Let every thread of this process allocate from one glibc malloc arena.
+
+    By default glibc gives each thread that allocates its own arena; memory a stage frees on
+    one thread is then not reused by a stage on another, and each arena grows and shrinks its
+    own heap. With two stages overlapping, the state scenario took about 470,000 page faults,
+    8–10 s of system time and 2.4 GB peak RSS; with one arena about 280,000, 5 s and 1.6 GB,
+    as many faults as the run without threads (measured). The large arrays are allocated
+    rarely, so one arena's lock costs nothing visible. Returns whether the setting took (False
+    on a C library without ``mallopt``)."""
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        return bool(ctypes.CDLL("libc.so.6").mallopt(_M_ARENA_MAX, 1))
+    except (OSError, AttributeError):  # not glibc
+        return False
 
 
 def make_executor(config: ExecutionConfig, source: Path | None = None) -> Executor:

@@ -68,6 +68,7 @@ __all__ = [
     "atomic_path",
     "write_text_atomic",
     "write_gpkg_layers",
+    "write_gpkg_layers_into",
     "csv_text",
     "show_text",
     "one_line",
@@ -902,23 +903,31 @@ def write_gpkg_layers(final: Path, layers: dict[str, gpd.GeoDataFrame], crs: CRS
     OutputError
         The file cannot be written (folder, permissions, disk full).
     """
+    with atomic_path(final) as tmp:
+        write_gpkg_layers_into(tmp, layers, crs, final=final)
+
+
+def write_gpkg_layers_into(
+    path: Path, layers: dict[str, gpd.GeoDataFrame], crs: CRS | str, *, final: Path
+) -> None:
+    """:func:`write_gpkg_layers` into ``path``, a temporary file of :func:`atomic_path` for
+    ``final`` (named in error messages); the caller renames it when everything else is done."""
     try:
         target = CRS.from_user_input(crs)
     except CRSError as exc:
         raise ConfigError(
             f"output CRS {show_text(crs)} is not a CRS pyproj knows (outputs.crs): {one_line(exc)}"
         ) from None
-    with atomic_path(final) as tmp:
-        for name, gdf in layers.items():
-            g = gdf
-            if g.crs is not None and target != g.crs:
-                g = g.to_crs(target)
-            elif g.crs is None:
-                g = g.set_crs(target, allow_override=True)
-            try:
-                pyogrio.write_dataframe(g, tmp, layer=name, driver="GPKG", promote_to_multi=False)
-            except pyogrio.errors.DataSourceError as exc:
-                msg = one_line(exc)
-                if "No space left" in msg or "disk full" in msg.lower():
-                    msg = "no space left on the device: the disk is full"
-                raise OutputError(f"{final}: cannot write layer '{name}' ({msg})") from None
+    for name, gdf in layers.items():
+        g = gdf
+        if g.crs is not None and target != g.crs:
+            g = g.to_crs(target)
+        elif g.crs is None:
+            g = g.set_crs(target, allow_override=True)
+        try:
+            pyogrio.write_dataframe(g, path, layer=name, driver="GPKG", promote_to_multi=False)
+        except pyogrio.errors.DataSourceError as exc:
+            msg = one_line(exc)
+            if "No space left" in msg or "disk full" in msg.lower():
+                msg = "no space left on the device: the disk is full"
+            raise OutputError(f"{final}: cannot write layer '{name}' ({msg})") from None

@@ -12,7 +12,6 @@ import pandas as pd
 
 from pipeline import io
 from pipeline.config import RunConfig
-from pipeline.corridor_stage import road_graph_for
 from pipeline.errors import InputFileError
 from pipeline.inspection import inspection_priorities, plan_inspections
 from pipeline.supply import supply_plan
@@ -89,9 +88,7 @@ def plans_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
         st["planned_day"] = np.nan
         if cfg.inputs.inspector_bases is not None and len(pri):
             bases = read_bases(cfg.inputs.inspector_bases)
-            towns = io.read_vector(cfg.inputs.towns, what="towns") if cfg.inputs.towns else None
-            with io.open_dem(cfg.inputs.dem) as ds:
-                graph, _ = road_graph_for(cfg, ds, st, towns)
+            graph = up["road_graph"]["graph"]
             plan = plan_inspections(graph, pri, bases, cfg.inspection.plan)
             visits = plan.plan[plan.plan["kind"] == "visit"]
             st["planned_day"] = (

@@ -9,7 +9,9 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import time
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -19,7 +21,13 @@ import pandas as pd
 
 from pipeline import atmosphere, io, terrain
 from pipeline.config import RunConfig
-from pipeline.corridor_stage import corridors_stage
+from pipeline.corridor_stage import (
+    corridors_stage,
+    road_graph_needs,
+    road_graph_stage,
+    road_graph_used,
+    road_profiles_stage,
+)
 from pipeline.errors import InputFileError
 from pipeline.execution import make_executor
 from pipeline.ingest import validate_stations
@@ -525,15 +533,32 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     from pipeline.report import build_report_html
     from pipeline.webmap import build_map_html
 
-    # the documents are independent: render them as separate pieces
-    docs = [
-        (name, build_map_html, {"spec": spec})
-        for name, spec in audience_maps(ctx, up, stations, zones, rejected).items()
-    ]
-    docs.append(("report.html", build_report_html, _report_kwargs(ctx, up, stations, rejected)))
-    rendered = _map(ctx, _render, [(fn, kw) for _, fn, kw in docs], {})
-    texts.update(zip([name for name, _, _ in docs], rendered, strict=True))
-    io.write_gpkg_layers(out / "altigrade.gpkg", layers, crs)
+    gpkg = out / "altigrade.gpkg"
+    # The GeoPackage is written to a temporary file and renamed over the previous one only
+    # once every document is drawn; where stages overlap it is written while they are drawn.
+    with io.atomic_path(gpkg) as gpkg_tmp, ThreadPoolExecutor(1) as writer:
+        t0 = time.perf_counter()
+
+        def write_layers() -> float:
+            io.write_gpkg_layers_into(gpkg_tmp, layers, crs, final=gpkg)
+            return time.perf_counter() - t0
+
+        overlap = ctx.executor is not None and ctx.executor.overlaps_stages
+        written = writer.submit(write_layers) if overlap else None
+        # the documents are independent: render them as separate pieces
+        docs = [
+            (name, build_map_html, {"spec": spec})
+            for name, spec in audience_maps(ctx, up, stations, zones, rejected).items()
+        ]
+        docs.append(("report.html", build_report_html, _report_kwargs(ctx, up, stations, rejected)))
+        rendered = _map(ctx, _render, [(fn, kw) for _, fn, kw in docs], {})
+        texts.update(zip([name for name, _, _ in docs], rendered, strict=True))
+        ctx.part_timings["publish/documents"] = time.perf_counter() - t0
+        if written is None:
+            t0 = time.perf_counter()
+            ctx.part_timings["publish/geopackage"] = write_layers()
+        else:
+            ctx.part_timings["publish/geopackage"] = written.result()
     for fname, text in texts.items():
         io.write_text_atomic(out / fname, text)
     outputs = ["altigrade.gpkg", *texts]
@@ -663,19 +688,49 @@ STAGES: list[Stage] = [
         modules=("pipeline.compliance",),
     ),
     Stage(
+        "road_graph",
+        road_graph_stage,
+        needs=road_graph_needs,
+        params=lambda c: {
+            "used": road_graph_used(c),
+            "fallback_grid_cells": None if c.inputs.roads else c.corridors.fallback_grid_cells,
+        },
+        input_files=lambda c: (
+            [c.inputs.roads]
+            if c.inputs.roads
+            else _dem_files(c) + ([c.inputs.towns] if c.inputs.towns else [])
+        ),
+        modules=(
+            "pipeline.corridor_stage",
+            "pipeline.roadgraph",
+            "pipeline.terrain_routes",
+            "pipeline.io",
+        ),
+    ),
+    Stage(
+        "road_profiles",
+        road_profiles_stage,
+        needs=("road_graph",),
+        params=lambda c: {
+            "enabled": c.corridors.enabled,
+            "climb_grade_threshold_pct": c.corridors.climb_grade_threshold_pct,
+            "partition_edges": c.execution.partition_edges,
+        },
+        input_files=_dem_files,
+        modules=("pipeline.corridor_stage", "pipeline.roadgraph", "pipeline.partitions"),
+    ),
+    Stage(
         "corridors",
         corridors_stage,
-        needs=("compliance",),
+        needs=("compliance", "road_graph", "road_profiles"),
         params=lambda c: {
             "corridors": c.corridors.model_dump(mode="json"),
             **_model_params(c),
             "defaults": c.station_defaults.model_dump(mode="json"),
             # how the work is cut fixes the order of the edge sums; the mode does not matter
-            "partitions": c.execution.model_dump(
-                mode="json", include={"partition_sources", "partition_edges"}
-            ),
+            "partitions": c.execution.model_dump(mode="json", include={"partition_sources"}),
         },
-        input_files=lambda c: _dem_files(c) + [p for p in (c.inputs.roads, c.inputs.towns) if p],
+        input_files=lambda c: [c.inputs.towns] if c.inputs.towns else [],
         modules=(
             "pipeline.corridor_stage",
             "pipeline.partitions",
@@ -683,23 +738,19 @@ STAGES: list[Stage] = [
             "pipeline.corridors",
             "pipeline.shortest_paths",
             "pipeline.requirement",
-            "pipeline.terrain_routes",
         ),
     ),
     Stage(
         "plans",
         plans_stage,
-        needs=("corridors",),
+        needs=("corridors", "road_graph"),
         params=lambda c: {
             "inspection": c.inspection.model_dump(mode="json"),
             "supply": c.supply.model_dump(mode="json"),
             "corridors": c.corridors.model_dump(mode="json"),
             "today_matters": True,
         },
-        input_files=lambda c: (
-            _dem_files(c)
-            + [p for p in (c.inputs.roads, c.inputs.towns, c.inputs.inspector_bases) if p]
-        ),
+        input_files=lambda c: [c.inputs.inspector_bases] if c.inputs.inspector_bases else [],
         modules=(
             "pipeline.plan_stage",
             "pipeline.inspection",
@@ -736,14 +787,16 @@ def run(
     today = today or run_date()
     with make_executor(config.execution, config.source) as executor:
         executor.warm_up()
+        stages = [*STAGES, _publish_stage()]
         result = run_stages(
-            [*STAGES, _publish_stage()],
+            stages,
             config,
             out,
             today=today,
             progress=progress,
             log=log,
             executor=executor,
+            concurrent_stages=executor.concurrent_stages,
         )
     result.manifest["outputs"] = result.manifest["counts"].pop("outputs", []) + ["manifest.json"]
     io.write_text_atomic(out / "manifest.json", json.dumps(result.manifest, indent=2, default=str))
