@@ -15,9 +15,12 @@ Measurements (see benchmarks/README.md for definitions and targets):
 
 * DEM sampling on the state DEM — ``dem_sampling_*`` (benchmarks/dem_sampling.py);
 * descent corridors — ``corridor_*`` from ``benchmarks/corridors_bench.py`` when present;
-* ``altigrade run`` on the state scenario in a subprocess — ``state_run_*``, against an I/O
-  floor (a fresh interpreter reading every input once with the same libraries);
-* Dask execution — ``dask_*``: a hook, null until the pipeline offers a Dask mode;
+* ``altigrade run`` on the state scenario in a subprocess — ``state_run_*`` with
+  ``execution.mode = "threads"`` (independent stages overlap on the two cores) and
+  ``state_run_local_*`` with ``mode = "local"``, against an I/O floor (a fresh interpreter
+  reading every input once with the same libraries);
+* Dask execution — ``dask_*``: the national subset in ``local`` mode and on a 2-worker local
+  cluster;
 * ``--national``: DEM sampling of the national stations over the VRT mosaic;
   ``--national-run`` also times ``altigrade run`` on the national scenario.
 
@@ -221,6 +224,24 @@ def _run_outputs_equal(a: Path, b: Path) -> dict[str, bool]:
     return out
 
 
+def _run_scenario(sc: scenarios.Scenario, execution: str, out: Path, *flags: str) -> dict:
+    """``altigrade run`` of the scenario in a fresh process with extra ``[execution]`` keys
+    (``execution``, TOML lines); the config is written beside the scenario (its input paths
+    are relative to its folder) and removed afterwards."""
+    body = sc.config.read_text(encoding="utf-8").replace(
+        "[execution]\n", "[execution]\n" + execution, 1
+    )
+    cfg_here = sc.folder / f".bench-{out.name}.toml"
+    cfg_here.write_text(body, encoding="utf-8")
+    try:
+        return run_measured(
+            [sys.executable, "-m", "pipeline.cli", *flags, "run", str(cfg_here), "--out", str(out)],
+            cwd=REPO,
+        )
+    finally:
+        cfg_here.unlink(missing_ok=True)
+
+
 def dask_measurements(sc: scenarios.Scenario, notes: dict, workers: int = 2) -> dict:
     """``dask_2_workers_speedup`` and ``dask_results_identical``.
 
@@ -230,31 +251,11 @@ def dask_measurements(sc: scenarios.Scenario, notes: dict, workers: int = 2) -> 
     Identical means every CSV and every GeoPackage layer of the two runs are equal.
     """
     out: dict = {"dask_2_workers_speedup": None, "dask_results_identical": None}
-    text = sc.config.read_text(encoding="utf-8")
     runs = {}
     with tempfile.TemporaryDirectory(prefix="altigrade-dask-") as tmp:
         for mode in ("local", "dask"):
             extra = f'mode = "{mode}"\n' + (f"workers = {workers}\n" if mode == "dask" else "")
-            body = text.replace("[execution]\n", "[execution]\n" + extra, 1)
-            # input paths are relative to the config's folder: write it beside the scenario
-            cfg_here = sc.folder / f".bench-{mode}.toml"
-            cfg_here.write_text(body, encoding="utf-8")
-            try:
-                r = run_measured(
-                    [
-                        sys.executable,
-                        "-m",
-                        "pipeline.cli",
-                        "-q",
-                        "run",
-                        str(cfg_here),
-                        "--out",
-                        str(Path(tmp) / mode),
-                    ],
-                    cwd=REPO,
-                )
-            finally:
-                cfg_here.unlink(missing_ok=True)
+            r = _run_scenario(sc, extra, Path(tmp) / mode, "-q")
             if r["returncode"] != 0:
                 notes["dask"] = f"{mode} run failed: {r['stderr_tail'][-500:]}"
                 return out
@@ -271,43 +272,48 @@ def dask_measurements(sc: scenarios.Scenario, notes: dict, workers: int = 2) -> 
     return out
 
 
+#: How the state run is executed: the one-machine setting that uses both cores (independent
+#: stages overlap); the same run in ``local`` mode is reported beside it.
+STATE_RUN_EXECUTION = 'mode = "threads"\nworkers = 2\n'
+
+
 def state_run_measurements(sc: scenarios.Scenario, notes: dict, prefix: str = "state") -> dict:
-    """``<prefix>_run_s``, ``<prefix>_run_peak_rss_mb``, ``<prefix>_run_vs_io_floor``."""
+    """``<prefix>_run_s``, ``<prefix>_run_peak_rss_mb``, ``<prefix>_run_vs_io_floor`` of the
+    run with :data:`STATE_RUN_EXECUTION`, and ``<prefix>_run_local_*`` of the same run with
+    ``mode = "local"`` (stages one after another); both in fresh processes, outputs compared."""
     out: dict = {
         f"{prefix}_run_s": None,
         f"{prefix}_run_peak_rss_mb": None,
         f"{prefix}_run_vs_io_floor": None,
     }
+    runs = {}
     with tempfile.TemporaryDirectory(prefix=f"altigrade-{prefix}-run-") as tmp:
-        r = run_measured(
-            [
-                sys.executable,
-                "-m",
-                "pipeline.cli",
-                "-v",
-                "run",
-                str(sc.config),
-                "--out",
-                str(Path(tmp) / "out"),
-            ],
-            cwd=REPO,
-        )
-        manifest = Path(tmp) / "out" / "manifest.json"
-        if manifest.exists():
+        for name, extra in (("overlap", STATE_RUN_EXECUTION), ("local", 'mode = "local"\n')):
+            r = runs[name] = _run_scenario(sc, extra, Path(tmp) / name, "-v")
+            if r["returncode"] != 0:
+                out[f"{prefix}_run_returncode"] = r["returncode"]
+                notes[f"{prefix}_run"] = (
+                    f"altigrade run ({name}) failed (exit {r['returncode']}): "
+                    + (r["stderr_tail"] or r["stdout_tail"])[-800:]
+                )
+                return out
+            manifest = Path(tmp) / name / "manifest.json"
             try:
                 m = json.loads(manifest.read_text(encoding="utf-8"))
+            except (OSError, ValueError):
+                continue
+            if name == "overlap":
                 out[f"{prefix}_run_stage_s"] = m.get("timings_s")
+                out[f"{prefix}_run_stage_spans_s"] = m.get("stage_spans_s")
                 out[f"{prefix}_run_stations_out"] = m.get("counts", {}).get("stations_out")
-            except ValueError:
-                pass
-    out[f"{prefix}_run_returncode"] = r["returncode"]
-    if r["returncode"] != 0:
-        notes[f"{prefix}_run"] = (
-            f"altigrade run failed (exit {r['returncode']}): "
-            + (r["stderr_tail"] or r["stdout_tail"])[-800:]
-        )
-        return out
+                out[f"{prefix}_run_execution"] = m.get("execution")
+            else:
+                out[f"{prefix}_run_local_stage_s"] = m.get("timings_s")
+        same = _run_outputs_equal(Path(tmp) / "local", Path(tmp) / "overlap")
+    out[f"{prefix}_run_returncode"] = 0
+    out[f"{prefix}_run_outputs_equal_local"] = all(same.values())
     floor = io_floor(sc)
+    r, loc = runs["overlap"], runs["local"]
     out.update(
         {
             f"{prefix}_run_s": r["wall_s"],
@@ -317,6 +323,9 @@ def state_run_measurements(sc: scenarios.Scenario, notes: dict, prefix: str = "s
             f"{prefix}_input_bytes": floor["input_bytes"],
             f"{prefix}_run_vs_io_floor": r["wall_s"] / floor["decoded_read_s"],
             f"{prefix}_run_vs_raw_byte_read": r["wall_s"] / max(floor["raw_read_s"], 1e-9),
+            f"{prefix}_run_local_s": loc["wall_s"],
+            f"{prefix}_run_local_peak_rss_mb": loc["peak_rss_mb"],
+            f"{prefix}_run_local_vs_io_floor": loc["wall_s"] / floor["decoded_read_s"],
         }
     )
     return out
@@ -397,6 +406,8 @@ TABLE_KEYS = (
     "state_run_peak_rss_mb",
     "state_io_floor_s",
     "state_run_vs_io_floor",
+    "state_run_local_s",
+    "state_run_local_vs_io_floor",
     "dask_2_workers_speedup",
     "dask_results_identical",
     "national_sampling_pts_per_s",
