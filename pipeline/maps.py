@@ -26,6 +26,7 @@ __all__ = [
     "VERDICT_STYLE",
     "ZONE_COLORS",
     "audience_maps",
+    "read_map_inputs",
     "basemap_of",
     "busiest",
     "station_map_spec",
@@ -416,6 +417,14 @@ def public_texts(stations: gpd.GeoDataFrame, standard_aki: float = 87.0) -> gpd.
     return st
 
 
+def read_map_inputs(cfg) -> dict[str, Any]:
+    """What the maps draw besides the run's results, read from its inputs: ``roads`` (the
+    busiest ``outputs.map_max_lines`` lines, or None), ``road_total`` (road rows in the
+    file), ``towns`` and ``fleet_zones`` (None where the config names no such file)."""
+    roads, road_total, towns, fz = _read_optional(cfg)
+    return {"roads": roads, "road_total": int(road_total), "towns": towns, "fleet_zones": fz}
+
+
 def _read_optional(cfg):
     """(busiest roads, road rows in the file, towns, fleet zones) of the run's inputs."""
     from pipeline import io
@@ -453,9 +462,13 @@ def audience_maps(
 ) -> dict[str, MapSpec]:
     """The three maps: ``map.html`` (regulators), ``map_distributor.html``,
     ``map_public.html``, as specs for :func:`pipeline.webmap.build_map_html` (one builder,
-    one look, cautions on each); the caller renders them, in parallel where it can."""
+    one look, cautions on each); the caller renders them, in parallel where it can. The
+    inputs they draw come from ``up["map_inputs"]`` (:func:`read_map_inputs`), read here when
+    no stage read them."""
     cfg = ctx.config
-    roads, road_total, towns, fleet_zones = _read_optional(cfg)
+    inputs = up.get("map_inputs") or read_map_inputs(cfg)
+    roads, road_total = inputs["roads"], inputs["road_total"]
+    towns, fleet_zones = inputs["towns"], inputs["fleet_zones"]
     corridors = up.get("corridors", {}).get("corridors")
     budget = cfg.outputs.map_max_lines
     corridors, corridor_total = busiest(

@@ -627,6 +627,16 @@ def _model_params(c: RunConfig) -> dict[str, Any]:
     }
 
 
+def _map_inputs(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Reads what the maps draw from the inputs (the busiest roads, towns, fleet zones:
+    :func:`pipeline.maps.read_map_inputs`) and loads the map and report code, ahead of
+    ``publish``: where stages overlap this runs while the road graph is still being profiled,
+    not at the end of the run."""
+    from pipeline import maps, report, webmap  # noqa: F401  (loaded here, off the last stage)
+
+    return maps.read_map_inputs(ctx.config)
+
+
 STAGES: list[Stage] = [
     Stage(
         "ingest",
@@ -757,6 +767,16 @@ STAGES: list[Stage] = [
             "pipeline.supply",
             "pipeline.roadgraph",
         ),
+    ),
+    # read for the maps on every run (not stored: the maps must show the files as they are)
+    Stage(
+        "map_inputs",
+        _map_inputs,
+        input_files=lambda c: [
+            p for p in (c.inputs.roads, c.inputs.towns, c.inputs.fleet_zones) if p
+        ],
+        modules=("pipeline.maps", "pipeline.io"),
+        cacheable=False,
     ),
 ]
 

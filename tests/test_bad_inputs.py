@@ -929,9 +929,7 @@ def test_case_in_process(case: Case, tmp_path: Path) -> None:
         assert "\n" not in msg, msg
         for fragment in case.expect.fragments:
             assert fragment in msg, (fragment, msg)
-        if case.id != "roads_file_missing":  # found only while drawing the map: see
-            # test_crash_safety.test_failed_publish_changes_no_output (xfail)
-            assert not (out / "altigrade.gpkg").exists()
+        assert not (out / "altigrade.gpkg").exists()  # nothing is published
     else:
         run(load_config(cfg_path), out)
         _check_rows(case, out)
