@@ -551,6 +551,7 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
             for name, spec in audience_maps(ctx, up, stations, zones, rejected).items()
         ]
         docs.append(("report.html", build_report_html, _report_kwargs(ctx, up, stations, rejected)))
+        ctx.part_timings["publish/document_contents"] = time.perf_counter() - t0
         rendered = _map(ctx, _render, [(fn, kw) for _, fn, kw in docs], {})
         texts.update(zip([name for name, _, _ in docs], rendered, strict=True))
         ctx.part_timings["publish/documents"] = time.perf_counter() - t0
