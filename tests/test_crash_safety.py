@@ -577,8 +577,8 @@ def test_stale_temporary_files_of_dead_runs_are_removed(tmp_path) -> None:
 
 
 def test_failed_publish_changes_no_output(tmp_path) -> None:
-    """An input found unusable while publishing (here: the roads file, read for the map) must
-    not leave a new GeoPackage beside the old map and manifest."""
+    """An input found unusable late (here: the roads file, read for the map) must not leave a
+    new GeoPackage beside the old map and manifest."""
     cfg = _tiny(tmp_path)
     out = tmp_path / "out"
     run(load_config(cfg), out)
@@ -594,6 +594,35 @@ def test_failed_publish_changes_no_output(tmp_path) -> None:
         run(load_config(cfg), out)
     after = {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()}
     assert after == before
+
+
+@pytest.mark.parametrize("mode", ["local", "threads"])
+def test_failure_while_drawing_leaves_the_previous_outputs(tmp_path, monkeypatch, mode) -> None:
+    """A document that fails to draw leaves every previous output as it was, also where the
+    GeoPackage is being written on another thread at the time (threads mode), and no
+    temporary file."""
+    import pipeline.report
+
+    cfg = _tiny(tmp_path)
+    text = cfg.read_text(encoding="utf-8")
+    cfg.write_text(text + f'\n[execution]\nmode = "{mode}"\nworkers = 2\n', encoding="utf-8")
+    out = tmp_path / "out"
+    run(load_config(cfg), out)
+    before = {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()}
+    (tmp_path / "stations.csv").write_text(csv_text(GOOD[:2]), encoding="utf-8")
+    drawn = []
+
+    def broken(**kwargs):
+        drawn.append(True)
+        raise OutputError("report: cannot draw")
+
+    monkeypatch.setattr(pipeline.report, "build_report_html", broken)
+    with pytest.raises(OutputError, match="cannot draw"):
+        run(load_config(cfg), out)
+    assert drawn
+    after = {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()}
+    assert after == before
+    assert not list(out.rglob(".tmp-*"))
 
 
 def test_output_folder_holding_the_inputs_is_refused(tmp_path) -> None:
