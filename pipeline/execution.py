@@ -238,10 +238,11 @@ def share_one_malloc_arena() -> bool:
     By default glibc gives each thread that allocates its own arena; memory a stage frees on
     one thread is then not reused by a stage on another, and each arena grows and shrinks its
     own heap. With two stages overlapping, the state scenario took about 470,000 page faults,
-    8–10 s of system time and 2.4 GB peak RSS; with one arena about 280,000, 5 s and 1.6 GB,
-    as many faults as the run without threads (measured). The large arrays are allocated
-    rarely, so one arena's lock costs nothing visible. Returns whether the setting took (False
-    on a C library without ``mallopt``)."""
+    8–10 s of system time and 2.3–2.5 GB peak RSS; set here, at the start of the run, about
+    330,000 faults and 1.8–2.0 GB (``MALLOC_ARENA_MAX=1`` in the environment, before the
+    interpreter starts: 280,000 and 1.6 GB, as many faults as the run without threads;
+    measured). The large arrays are allocated rarely, so one arena's lock costs nothing
+    visible. Returns whether the setting took (False on a C library without ``mallopt``)."""
     if not sys.platform.startswith("linux"):
         return False
     try:
