@@ -94,8 +94,10 @@ class Executor:
         """How many stages may run at once: two where stages overlap — the run has two long
         independent chains (terrain → fleet, and road graph → edge profiles); more stage
         threads only contend for the interpreter (measured on the state scenario) — else one.
-        """
-        return 2 if self.overlaps_stages else 1
+        ``threads`` with ``workers = 1`` asks for one thread: one stage at a time."""
+        if not self.overlaps_stages or (self.mode == "threads" and self.config.workers == 1):
+            return 1
+        return 2
 
     def map(
         self, fn: Callable[..., Any], items: Sequence[Any], *, shared: dict[str, Any] | None = None

@@ -83,6 +83,44 @@ def test_the_work_really_was_partitioned_and_distributed(runs):
     assert m["stage_keys"] == local["stage_keys"]
 
 
+def test_stages_overlap_where_the_mode_allows_and_the_manifest_is_the_same(runs):
+    """In threads mode the road graph is built beside the terrain → compliance chain (both
+    wait only for the stations); in local mode every stage starts after the one before it
+    ended. The counts are the same in every mode."""
+    spans = {}
+    counts = {}
+    for mode in ("local", "threads", "dask"):
+        m = json.loads((runs[mode] / "manifest.json").read_text(encoding="utf-8"))
+        spans[mode], counts[mode] = m["stage_spans_s"], m["counts"]
+    local = sorted(spans["local"].values())
+    assert all(b[0] >= a[1] for a, b in zip(local, local[1:], strict=False))
+    th = spans["threads"]
+    # the road graph runs beside the terrain → atmosphere → fleet → compliance chain
+    assert th["road_graph"][0] < th["compliance"][1] and th["terrain"][0] < th["road_graph"][1]
+    assert th["road_graph"][0] >= th["ingest"][1]  # it waits for what it needs
+    assert th["corridors"][0] >= max(th["compliance"][1], th["road_profiles"][1])
+    # the data decide the partitions: every count agrees, partition counts included
+    assert counts["threads"] == counts["local"] == counts["dask"]
+
+
+@pytest.mark.parametrize(
+    "mode,workers,expected",
+    [
+        ("local", None, 1),
+        ("threads", None, 2),
+        ("threads", 1, 1),
+        ("threads", 4, 2),
+        ("dask", 1, 2),
+    ],
+)
+def test_how_many_stages_run_at_once(mode, workers, expected):
+    from pipeline.config import ExecutionConfig
+    from pipeline.execution import make_executor
+
+    ex = make_executor(ExecutionConfig(mode=mode, workers=workers))
+    assert ex.concurrent_stages == expected
+
+
 def test_a_scheduler_that_does_not_answer_exits_2_naming_the_key(small_demo_inputs, tmp_path):
     cfg = tmp_path / "far.toml"
     cfg.write_text(
