@@ -207,8 +207,8 @@ class ExecutionConfig(_Frozen):
         None,
         ge=1,
         le=1024,
-        description="Threads ('threads') or worker processes of the local Dask cluster; "
-        "default: the number of CPU cores.",
+        description="Threads ('threads'; 1: one stage at a time, nothing overlaps) or worker "
+        "processes of the local Dask cluster; default: the number of CPU cores.",
     )
     scheduler: str | None = Field(
         None,
