@@ -552,6 +552,7 @@ def compute_corridors(
         candidate_aki=cand,
         params=params,
         root=tree_root,
+        tree_threads=_tree_threads(executor),
     )
     parts = []
     for sl in partition_slices(src_rows.size, sources_per_partition):
@@ -714,6 +715,9 @@ class _Network:
     params: CorridorParams
     #: "sources": one tree per source; "destinations": one tree per destination node.
     root: str = "sources"
+    #: Threads a partition may grow its destination trees on (1: one after another); the
+    #: results do not depend on it.
+    tree_threads: int = 1
 
 
 @dataclass(frozen=True, eq=False)
@@ -821,6 +825,42 @@ def _gravity(
     return q, reach, far
 
 
+#: Roots per chunk of town trees below which a partition's trees stay in one chunk.
+_MIN_TREES_PER_CHUNK = 4
+
+#: Per-source outputs the tree sums add into (``root_tree_sums``).
+_TREE_SUM_OUTPUTS = ("export_risk", "vd_total", "vd_deficit", "vd_deficit_cand")
+
+
+def _tree_chunks(n_roots: int) -> list[np.ndarray]:
+    """The roots of a partition cut into two chunks (alternate roots, for balance), or one
+    when there are few. Fixed by the number of roots alone, never by the execution mode: each
+    chunk's sums are added in their own arrays and then in chunk order, so the bits are the
+    same whether the chunks run one after another or side by side."""
+    if n_roots < 2 * _MIN_TREES_PER_CHUNK:
+        return [np.arange(n_roots)]
+    return [np.arange(0, n_roots, 2), np.arange(1, n_roots, 2)]
+
+
+def _tree_threads(executor: Any) -> int:
+    """Two threads for a partition's trees where the run asked for threads (more than one),
+    else one (a Dask worker runs one task per thread already)."""
+    if getattr(executor, "mode", "local") != "threads":
+        return 1
+    return 1 if executor.config.workers == 1 else 2
+
+
+def _each_chunk(fn: Callable[[Any], Any], items: list, threads: int) -> list:
+    """``[fn(item) for item in items]``, on ``threads`` threads when more than one (the tree
+    code is compiled and releases the interpreter lock)."""
+    if threads <= 1 or len(items) <= 1:
+        return [fn(it) for it in items]
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(min(threads, len(items)), thread_name_prefix="altigrade-trees") as ex:
+        return list(ex.map(fn, items))
+
+
 def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, Any]:
     """The same sums as :func:`_partition_by_source` from one tree per destination node,
     grown on the reverse graph towards it: where destinations are fewer than sources (towns
@@ -857,40 +897,47 @@ def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, An
         <= reach_m
     )  # (roots, sources)
     roots, near = roots[near.any(axis=1)], near[near.any(axis=1)]
-    work = TreeWork(k_all, nnz)
-    targets = np.zeros(k_all, dtype=bool)
-    pos = np.full(k_all, -1, dtype=np.int64)
-    mark = np.zeros(k_all, dtype=bool)
     dist = np.full((m, roots.size), np.inf)  # road distance source -> root [m]
-    trees = []
-    t_dij = 0.0
-    for u, root in enumerate(roots):
-        t0 = time.perf_counter()
-        tg = src_local[near[u]]
-        targets[tg] = True
-        k = bounded_tree(rindptr, rindices, rlen, local[root], r_m, work, targets)
-        targets[tg] = False
-        t_dij += time.perf_counter() - t0
-        # keep only the part of the tree on the partition's sources' paths to the root
-        order = work.order[:k]
-        pos[order] = 0
-        ends = np.unique(src_local[near[u] & (pos[src_local] == 0)])
-        pos[order] = -1
-        keep = path_nodes(work, ends, mark)
-        if keep.size == 0:
-            trees.append(None)
-            continue
-        pos[keep] = np.arange(keep.size)
-        parent = np.full(keep.size, -1, dtype=np.int64)
-        fent = np.full(keep.size, -1, dtype=np.int64)
-        parent[1:] = pos[work.pred_node[keep[1:]]]
-        fent[1:] = rent[work.pred_entry[keep[1:]]]
-        sp = np.where(near[u], pos[src_local], -1)
-        dtree = work.dist[keep]
-        dist[sp >= 0, u] = dtree[sp[sp >= 0]]
-        trees.append((parent, fent, dtree, sp))
-        pos[keep] = -1
-    work.reset()
+    trees: list = [None] * roots.size
+    chunks = _tree_chunks(roots.size)
+
+    def grow(chunk: np.ndarray) -> float:
+        """The trees of one chunk of roots (work arrays of its own); returns Dijkstra time."""
+        work = TreeWork(k_all, nnz)
+        targets = np.zeros(k_all, dtype=bool)
+        pos = np.full(k_all, -1, dtype=np.int64)
+        mark = np.zeros(k_all, dtype=bool)
+        t_dij = 0.0
+        for u in chunk.tolist():
+            root = roots[u]
+            t0 = time.perf_counter()
+            tg = src_local[near[u]]
+            targets[tg] = True
+            k = bounded_tree(rindptr, rindices, rlen, local[root], r_m, work, targets)
+            targets[tg] = False
+            t_dij += time.perf_counter() - t0
+            # keep only the part of the tree on the partition's sources' paths to the root
+            order = work.order[:k]
+            pos[order] = 0
+            ends = np.unique(src_local[near[u] & (pos[src_local] == 0)])
+            pos[order] = -1
+            keep = path_nodes(work, ends, mark)
+            if keep.size == 0:
+                continue
+            pos[keep] = np.arange(keep.size)
+            parent = np.full(keep.size, -1, dtype=np.int64)
+            fent = np.full(keep.size, -1, dtype=np.int64)
+            parent[1:] = pos[work.pred_node[keep[1:]]]
+            fent[1:] = rent[work.pred_entry[keep[1:]]]
+            sp = np.where(near[u], pos[src_local], -1)
+            dtree = work.dist[keep]
+            dist[sp >= 0, u] = dtree[sp[sp >= 0]]  # column u: this chunk's alone
+            trees[u] = (parent, fent, dtree, sp)
+            pos[keep] = -1
+        work.reset()
+        return t_dij
+
+    t_dij = sum(_each_chunk(grow, chunks, net.tree_threads))
     # the gravity split per source over all destinations (rows of net.d_node)
     root_of = np.full(net.d_node.size, -1, dtype=np.int64)
     if roots.size:
@@ -914,32 +961,59 @@ def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, An
     bits = np.zeros((nnz, max(1, -(-m // 64))), dtype=np.uint64)
     req = np.ascontiguousarray(net.req_clean[ents])
     ent_len = net.length_m[ents]
-    for u, tree in enumerate(trees):
-        if tree is None:
-            continue
-        parent, fent, dtree, sp = tree
-        use = (sp >= 0) & (q_root[:, u] > 0)
-        if not use.any():
-            continue
-        rows = np.flatnonzero(use)
-        root_tree_sums(
-            parent,
-            fent,
-            dtree,
-            sp[rows],
-            q_root[rows, u],
-            grade_idx[rows].astype(np.int64),
-            rows.astype(np.int64),
-            cand_ok,
-            ent_len,
-            req,
-            grades.astype(float),
-            cand.astype(float),
-            r_m,
-            acc,
-            bits,
-            out,
-        )
+
+    def add_trees(chunk: np.ndarray, c: int) -> tuple[np.ndarray, np.ndarray, dict]:
+        """Sums of one chunk's trees. Edge sums: the first chunk adds into the partition's
+        arrays, every other chunk into arrays of its own (added below, in chunk order). Each
+        source's sums: kept per tree, and added below in root order, as one chunk would."""
+        sums, sum_bits = (acc, bits) if c == 0 else (np.zeros_like(acc), np.zeros_like(bits))
+        sum_out = {k: np.zeros_like(out[k]) for k in _TREE_SUM_OUTPUTS}
+        per_tree = {}
+        for u in chunk.tolist():
+            if trees[u] is None:
+                continue
+            parent, fent, dtree, sp = trees[u]
+            use = (sp >= 0) & (q_root[:, u] > 0)
+            if not use.any():
+                continue
+            rows = np.flatnonzero(use)
+            root_tree_sums(
+                parent,
+                fent,
+                dtree,
+                sp[rows],
+                q_root[rows, u],
+                grade_idx[rows].astype(np.int64),
+                rows.astype(np.int64),
+                cand_ok,
+                ent_len,
+                req,
+                grades.astype(float),
+                cand.astype(float),
+                r_m,
+                sums,
+                sum_bits,
+                sum_out,
+            )
+            # each source is added once per tree: these are that tree's terms, exactly
+            per_tree[u] = (rows, {k: sum_out[k][rows].copy() for k in _TREE_SUM_OUTPUTS})
+            for k in _TREE_SUM_OUTPUTS:
+                sum_out[k][rows] = 0.0
+        return sums, sum_bits, per_tree
+
+    chunk_sums = _each_chunk(
+        lambda cc: add_trees(*cc), [(ch, c) for c, ch in enumerate(chunks)], net.tree_threads
+    )
+    terms = {}
+    for c, (sums, sum_bits, per_tree) in enumerate(chunk_sums):
+        if c > 0:
+            acc += sums
+            bits |= sum_bits
+        terms.update(per_tree)
+    for u in sorted(terms):  # root order, whatever the chunks
+        rows, vals = terms[u]
+        for k in _TREE_SUM_OUTPUTS:
+            out[k][rows] += vals[k]
     acc[6] = np.bitwise_count(bits).sum(axis=1)
     out["vd_deficit_cand"][~cand_ok] = np.nan
     used = np.flatnonzero(acc[6] > 0)

@@ -262,3 +262,52 @@ def test_requirement_function_solves_each_elevation_and_load_once(tmp_path):
     np.testing.assert_array_equal(one, requirement_function(cfg)(np.full(5, z[0]), g[:5], c[:5]))
     assert np.isnan(got[-1]) and np.isfinite(got[:-1]).all()
     assert (got[n : n + 200 : 2] < got[n + 1 : n + 200 : 2]).all()  # the climb load raises it
+
+
+def test_town_trees_in_two_chunks_change_no_station_bit(case, monkeypatch):
+    """A partition's town trees grown in two chunks (side by side on two threads in threads
+    mode) against all of them in one chunk: each station's sums bit for bit (its terms are
+    added in root order either way), each edge's to rounding, and threads equal to one after
+    another to the bit."""
+    graph, prof, st, _, _ = case
+    # many towns within a long tank range: most stations are summed over many trees, so the
+    # order of their terms shows in the bits
+    rng = np.random.default_rng(5)
+    towns = pd.DataFrame(
+        {"node": rng.integers(0, graph.n_nodes, 40), "weight": rng.uniform(1e3, 1e5, 40)}
+    )
+    params = co.CorridorParams(tank_range_km=90.0, decay_km=40.0)
+    kw = {"candidate_aki": np.array([86.0]), "sources_per_partition": 10_000}
+    kw["tree_root"] = "destinations"
+
+    def run(**extra):
+        return co.compute_corridors(graph, prof, st, towns, toy_requirement, params, **kw, **extra)
+
+    chunked = []
+    real = co._tree_chunks
+    monkeypatch.setattr(co, "_tree_chunks", lambda n: chunked.append(n) or real(n))
+    raw = []  # each partition's unrounded per-source sums
+    real_part = co._corridor_partition
+
+    def keep(part, net):
+        got = real_part(part, net)
+        raw.append({k: got[k].copy() for k in co._TREE_SUM_OUTPUTS})
+        return got
+
+    monkeypatch.setattr(co, "_corridor_partition", keep)
+    two = run()
+    assert chunked and len(real(chunked[0])) == 2  # the partition's trees were split
+    with make_executor(ExecutionConfig(mode="threads", workers=2)) as ex:
+        threads = run(executor=ex)
+    monkeypatch.setattr(co, "_tree_chunks", lambda n: [np.arange(n)])
+    one = run()
+    assert len(raw) == 3
+    for k in co._TREE_SUM_OUTPUTS:  # bit for bit before any rounding
+        np.testing.assert_array_equal(raw[0][k], raw[2][k], err_msg=k)
+        np.testing.assert_array_equal(raw[1][k], raw[2][k], err_msg=k)
+    pd.testing.assert_frame_equal(one.stations, two.stations, check_exact=True)
+    np.testing.assert_array_equal(one.candidate_share_in_deficit, two.candidate_share_in_deficit)
+    pd.testing.assert_frame_equal(one.edges, two.edges, rtol=1e-12)
+    pd.testing.assert_frame_equal(two.stations, threads.stations, check_exact=True)
+    pd.testing.assert_frame_equal(two.edges, threads.edges, check_exact=True)
+    assert (one.stations["export_risk_l_aki_per_month"] > 0).sum() > 10
