@@ -233,7 +233,6 @@ def run_stages(
     upstream = _transitive(stages, needs)
     keys: dict[str, str] = {}
     input_hashes: dict[str, str] = {}
-    stage_files: dict[str, list[Path]] = {}
     for stage in stages:
         missing = [n for n in needs[stage.name] if n not in keys]
         if missing:
@@ -242,7 +241,6 @@ def run_stages(
         for f in files:
             if str(f) not in input_hashes:
                 input_hashes[str(f)] = file_sha256(f) if f.is_file() else "missing"
-        stage_files[stage.name] = files
         key_src = {
             "stage": stage.name,
             "code": _code_hash(stage.modules),
@@ -386,15 +384,14 @@ def _run_concurrently(
 
     def work(i: int, stage: Stage) -> None:
         try:
-            outcome = run_one(stage)
+            outcome, error = run_one(stage), None
         except BaseException as exc:  # handed to the run's thread below
-            with changed:
-                errors[i] = exc
-                running.discard(stage.name)
-                changed.notify_all()
-            return
+            outcome, error = None, exc
         with changed:
-            outcomes[stage.name] = outcome
+            if error is None:
+                outcomes[stage.name] = outcome
+            else:
+                errors[i] = error
             running.discard(stage.name)
             changed.notify_all()
 
