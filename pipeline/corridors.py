@@ -552,7 +552,7 @@ def compute_corridors(
         candidate_aki=cand,
         params=params,
         root=tree_root,
-        tree_threads=_tree_threads(executor),
+        tree_threads=getattr(executor, "threads_per_piece", 1),
     )
     parts = []
     for sl in partition_slices(src_rows.size, sources_per_partition):
@@ -840,14 +840,6 @@ def _tree_chunks(n_roots: int) -> list[np.ndarray]:
     if n_roots < 2 * _MIN_TREES_PER_CHUNK:
         return [np.arange(n_roots)]
     return [np.arange(0, n_roots, 2), np.arange(1, n_roots, 2)]
-
-
-def _tree_threads(executor: Any) -> int:
-    """Two threads for a partition's trees where the run asked for threads (more than one),
-    else one (a Dask worker runs one task per thread already)."""
-    if getattr(executor, "mode", "local") != "threads":
-        return 1
-    return 1 if executor.config.workers == 1 else 2
 
 
 def _each_chunk(fn: Callable[[Any], Any], items: list, threads: int) -> list:

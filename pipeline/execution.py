@@ -86,18 +86,25 @@ class Executor:
 
     @property
     def overlaps_stages(self) -> bool:
-        """Whether independent stages run at the same time (every mode but ``local``)."""
-        return self.mode != "local"
+        """Whether independent stages run at the same time: in every mode but ``local`` and
+        ``threads`` with ``workers = 1`` (one thread asked for: one thing at a time)."""
+        one_thread = self.mode == "threads" and self.config.workers == 1
+        return self.mode != "local" and not one_thread
 
     @property
     def concurrent_stages(self) -> int:
         """How many stages may run at once: two where stages overlap — the run has two long
         independent chains (terrain → fleet, and road graph → edge profiles); more stage
         threads only contend for the interpreter (measured on the state scenario) — else one.
-        ``threads`` with ``workers = 1`` asks for one thread: one stage at a time."""
-        if not self.overlaps_stages or (self.mode == "threads" and self.config.workers == 1):
-            return 1
-        return 2
+        """
+        return 2 if self.overlaps_stages else 1
+
+    @property
+    def threads_per_piece(self) -> int:
+        """Threads one partition may use for its own compiled loops (a partition's town
+        trees): two where stages overlap in ``threads`` mode, else one (a Dask worker already
+        runs one task per thread)."""
+        return 2 if self.mode == "threads" and self.overlaps_stages else 1
 
     def map(
         self, fn: Callable[..., Any], items: Sequence[Any], *, shared: dict[str, Any] | None = None

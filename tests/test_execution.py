@@ -104,21 +104,23 @@ def test_stages_overlap_where_the_mode_allows_and_the_manifest_is_the_same(runs)
 
 
 @pytest.mark.parametrize(
-    "mode,workers,expected",
+    "mode,workers,expected,per_piece",
     [
-        ("local", None, 1),
-        ("threads", None, 2),
-        ("threads", 1, 1),
-        ("threads", 4, 2),
-        ("dask", 1, 2),
+        ("local", None, 1, 1),
+        ("threads", None, 2, 2),
+        ("threads", 1, 1, 1),
+        ("threads", 4, 2, 2),
+        ("dask", 1, 2, 1),
     ],
 )
-def test_how_many_stages_run_at_once(mode, workers, expected):
+def test_how_many_stages_run_at_once(mode, workers, expected, per_piece):
     from pipeline.config import ExecutionConfig
     from pipeline.execution import make_executor
 
     ex = make_executor(ExecutionConfig(mode=mode, workers=workers))
     assert ex.concurrent_stages == expected
+    assert ex.overlaps_stages == (expected > 1)
+    assert ex.threads_per_piece == per_piece  # threads a partition's town trees may use
 
 
 def test_a_scheduler_that_does_not_answer_exits_2_naming_the_key(small_demo_inputs, tmp_path):
