@@ -421,12 +421,6 @@ def read_map_inputs(cfg) -> dict[str, Any]:
     """What the maps draw besides the run's results, read from its inputs: ``roads`` (the
     busiest ``outputs.map_max_lines`` lines, or None), ``road_total`` (road rows in the
     file), ``towns`` and ``fleet_zones`` (None where the config names no such file)."""
-    roads, road_total, towns, fz = _read_optional(cfg)
-    return {"roads": roads, "road_total": int(road_total), "towns": towns, "fleet_zones": fz}
-
-
-def _read_optional(cfg):
-    """(busiest roads, road rows in the file, towns, fleet zones) of the run's inputs."""
     from pipeline import io
 
     roads, road_total = (
@@ -437,12 +431,17 @@ def _read_optional(cfg):
         else (None, 0)
     )
     towns = io.read_vector(cfg.inputs.towns, what="towns") if cfg.inputs.towns else None
-    fz = (
+    fleet_zones = (
         io.read_vector(cfg.inputs.fleet_zones, what="fleet zones")
         if cfg.inputs.fleet_zones
         else None
     )
-    return roads, road_total, towns, fz
+    return {
+        "roads": roads,
+        "road_total": int(road_total),
+        "towns": towns,
+        "fleet_zones": fleet_zones,
+    }
 
 
 def _station_layer(stations, style, popup, name="Stations") -> MapLayer:

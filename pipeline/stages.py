@@ -540,8 +540,9 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         t0 = time.perf_counter()
 
         def write_layers() -> float:
+            start = time.perf_counter()
             io.write_gpkg_layers_into(gpkg_tmp, layers, crs, final=gpkg)
-            return time.perf_counter() - t0
+            return time.perf_counter() - start
 
         overlap = ctx.executor is not None and ctx.executor.overlaps_stages
         written = writer.submit(write_layers) if overlap else None
@@ -555,11 +556,8 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         rendered = _map(ctx, _render, [(fn, kw) for _, fn, kw in docs], {})
         texts.update(zip([name for name, _, _ in docs], rendered, strict=True))
         ctx.part_timings["publish/documents"] = time.perf_counter() - t0
-        if written is None:
-            t0 = time.perf_counter()
-            ctx.part_timings["publish/geopackage"] = write_layers()
-        else:
-            ctx.part_timings["publish/geopackage"] = written.result()
+        geopackage_s = write_layers() if written is None else written.result()
+        ctx.part_timings["publish/geopackage"] = geopackage_s
     for fname, text in texts.items():
         io.write_text_atomic(out / fname, text)
     outputs = ["altigrade.gpkg", *texts]
