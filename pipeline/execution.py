@@ -93,11 +93,17 @@ class Executor:
 
     @property
     def concurrent_stages(self) -> int:
-        """How many stages may run at once: two where stages overlap — the run has two long
-        independent chains (terrain → fleet, and road graph → edge profiles); more stage
-        threads only contend for the interpreter (measured on the state scenario) — else one.
+        """How many stages may run at once: one without overlap; two in ``threads`` mode —
+        the run has two long independent chains (terrain → fleet, and road graph → edge
+        profiles), and more stage threads only contended for the interpreter (measured on the
+        state scenario); three in ``dask`` mode, where a stage whose pieces are on the cluster
+        holds its thread without using this process's CPU (while the cluster starts, the
+        zones and the station sampling both wait for it, and a third slot lets the road graph
+        be built meanwhile).
         """
-        return 2 if self.overlaps_stages else 1
+        if not self.overlaps_stages:
+            return 1
+        return 3 if self.mode == "dask" else 2
 
     @property
     def threads_per_piece(self) -> int:

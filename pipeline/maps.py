@@ -187,9 +187,10 @@ def corridor_layer(corridors: gpd.GeoDataFrame, total: int | None = None) -> Map
     )
 
 
-def basemap_of(terrain_artefacts: dict[str, Any]) -> Basemap | None:
-    png = terrain_artefacts.get("basemap_png")
-    bounds = terrain_artefacts.get("basemap_bounds")
+def basemap_of(artefacts: dict[str, Any]) -> Basemap | None:
+    """The basemap stage's PNG and bounds as a :class:`Basemap` (None when absent)."""
+    png = artefacts.get("basemap_png")
+    bounds = artefacts.get("basemap_bounds")
     if png is None or bounds is None:
         return None
     (s, w), (n, e) = bounds["bounds"]
@@ -474,7 +475,7 @@ def audience_maps(
         corridors, budget, ("risk_l_aki_per_month", "flow_l_per_month")
     )
     plans = up.get("plans", {})
-    basemap = basemap_of(up.get("terrain", {}))
+    basemap = basemap_of(up.get("basemap", {}))
     note = f"Run date {ctx.today.isoformat()} · altigrade"
     maps: dict[str, MapSpec] = {}
 

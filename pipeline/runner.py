@@ -56,6 +56,9 @@ class Stage:
     input_files : files the stage reads directly (hashed into the key)
     modules : dotted module names whose source is the stage's code version
     cacheable : False for stages that must always run (e.g. publishing outputs)
+    start_after : stages that must have ended before this one starts where stages overlap,
+        though it reads nothing of theirs (an order of work, not a dependency: neither its
+        key nor its inputs change); names not in the run are ignored
     """
 
     name: str
@@ -65,6 +68,7 @@ class Stage:
     input_files: Callable[[RunConfig], Sequence[Path]] = lambda cfg: ()
     modules: tuple[str, ...] = ()
     cacheable: bool = True
+    start_after: tuple[str, ...] = ()
 
 
 @dataclass
@@ -230,6 +234,7 @@ def run_stages(
     # A stage's key depends on its inputs and its upstream keys, never on results: all keys
     # (and every input file's hash) are known before the first stage runs.
     needs = {s.name: stage_needs(s, config) for s in stages}
+    names = {s.name for s in stages}
     upstream = _transitive(stages, needs)
     keys: dict[str, str] = {}
     input_hashes: dict[str, str] = {}
@@ -237,6 +242,9 @@ def run_stages(
         missing = [n for n in needs[stage.name] if n not in keys]
         if missing:
             raise ValueError(f"stage {stage.name} needs {missing}, which do not come before it")
+        later = [n for n in stage.start_after if n in names and n not in keys]
+        if later:
+            raise ValueError(f"stage {stage.name} starts after {later}, listed after it")
         files = [Path(f) for f in stage.input_files(config) if f is not None]
         for f in files:
             if str(f) not in input_hashes:
@@ -313,7 +321,10 @@ def run_stages(
         for stage in stages:
             outcomes[stage.name] = run_one(stage)
     else:
-        _run_concurrently(stages, needs, run_one, outcomes, concurrent_stages)
+        waits_for = {
+            s.name: needs[s.name] + tuple(n for n in s.start_after if n in names) for s in stages
+        }
+        _run_concurrently(stages, waits_for, run_one, outcomes, concurrent_stages)
     counts: dict[str, Any] = {}
     timings: dict[str, float] = {}
     part_timings: dict[str, float] = {}
@@ -368,12 +379,13 @@ def _transitive(stages: Sequence[Stage], needs: dict[str, tuple[str, ...]]) -> d
 
 def _run_concurrently(
     stages: Sequence[Stage],
-    needs: dict[str, tuple[str, ...]],
+    waits_for: dict[str, tuple[str, ...]],
     run_one: Callable[[Stage], _Outcome],
     outcomes: dict[str, _Outcome],
     at_once: int,
 ) -> None:
-    """Run each stage on a thread of its own once its needs are done, ``at_once`` at most.
+    """Run each stage on a thread of its own once the stages it waits for (its needs and
+    ``start_after``) are done, ``at_once`` at most; among ready stages, in list order.
 
     The threads are daemons: an interrupted run does not wait for a long stage to end (every
     artefact is written atomically, so nothing half-written is ever taken for a result)."""
@@ -402,7 +414,7 @@ def _run_concurrently(
                     i, stage = item
                     if len(running) >= at_once:
                         break
-                    if all(n in outcomes for n in needs[stage.name]):
+                    if all(n in outcomes for n in waits_for[stage.name]):
                         waiting.remove(item)
                         running.add(stage.name)
                         threading.Thread(

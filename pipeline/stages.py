@@ -71,8 +71,7 @@ def _ingest(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
 
 # ------------------------------------------------------------------------------ terrain
 def _terrain(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
-    """Adds ``elevation_m``, ``elevation_status``, ``dem_x``, ``dem_y`` (DEM CRS); makes the
-    hillshade basemap for the maps."""
+    """Adds ``elevation_m``, ``elevation_status``, ``dem_x``, ``dem_y`` (DEM CRS)."""
     st = up["ingest"]["stations"].copy()
     require_columns(st, ("lon", "lat"), "terrain")
     with io.open_dem(ctx.config.inputs.dem) as ds:
@@ -89,7 +88,6 @@ def _terrain(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
                 (np.abs(st["lon"].to_numpy(float)) <= 90)
                 & (sx >= b.left) & (sx <= b.right) & (sy >= b.bottom) & (sy <= b.top)
             )  # fmt: skip
-        basemap = _basemap(ds, ctx)
         dem_info = {
             "crs": ds.crs.to_string(),
             "width": ds.width,
@@ -141,7 +139,7 @@ def _terrain(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         )
         st = st[~unplaced].reset_index(drop=True)
         ctx.counts["rows_rejected_terrain"] = int(unplaced.sum())
-    return {"stations": st, "rejected": rejected, **basemap}
+    return {"stations": st, "rejected": rejected}
 
 
 def _map(ctx: StageContext, fn: Callable, items: list, shared: dict[str, Any]) -> list:
@@ -188,10 +186,14 @@ def _as_rejected(gdf: gpd.GeoDataFrame, reasons: list[str]) -> gpd.GeoDataFrame:
     return gpd.GeoDataFrame(text.reset_index(drop=True), geometry=list(geom), crs=gdf.crs)
 
 
-def _basemap(ds, ctx: StageContext) -> dict[str, Any]:
+def _basemap(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """The maps' hillshade basemap (a PNG and its bounds), from the DEM alone: a stage of its
+    own, so that where stages overlap it is drawn while the stations are placed and
+    modelled, not before them."""
     from pipeline.hillshade import basemap_from_dataset
 
-    bm = basemap_from_dataset(ds, max_pixels=ctx.config.outputs.map_max_basemap_px)
+    with io.open_dem(ctx.config.inputs.dem) as ds:
+        bm = basemap_from_dataset(ds, max_pixels=ctx.config.outputs.map_max_basemap_px)
     return {"basemap_png": bm.png_bytes, "basemap_bounds": {"bounds": bm.bounds_latlon}}
 
 
@@ -650,12 +652,9 @@ STAGES: list[Stage] = [
         "terrain",
         _terrain,
         needs=("ingest",),
-        params=lambda c: {
-            "basemap_px": c.outputs.map_max_basemap_px,
-            **c.terrain.model_dump(mode="json"),
-        },
+        params=lambda c: c.terrain.model_dump(mode="json"),
         input_files=_dem_files,
-        modules=("pipeline.terrain", "pipeline.hillshade", "pipeline.io"),
+        modules=("pipeline.terrain", "pipeline.io"),
     ),
     Stage(
         "atmosphere",
@@ -766,6 +765,16 @@ STAGES: list[Stage] = [
             "pipeline.supply",
             "pipeline.roadgraph",
         ),
+    ),
+    # needed only by publish; where stages overlap, drawn once the stations are placed, so
+    # that it never holds up the road graph (the state run's longest chain)
+    Stage(
+        "basemap",
+        _basemap,
+        params=lambda c: {"basemap_px": c.outputs.map_max_basemap_px},
+        input_files=_dem_files,
+        modules=("pipeline.hillshade", "pipeline.io"),
+        start_after=("terrain",),
     ),
     # read for the maps on every run (not stored: the maps must show the files as they are)
     Stage(

@@ -84,9 +84,9 @@ def test_the_work_really_was_partitioned_and_distributed(runs):
 
 
 def test_stages_overlap_where_the_mode_allows_and_the_manifest_is_the_same(runs):
-    """In threads mode the road graph is built beside the terrain → compliance chain (both
-    wait only for the stations); in local mode every stage starts after the one before it
-    ended. The counts are the same in every mode."""
+    """In threads and dask mode stages overlap, each starting only once what it needs has
+    ended; in local mode every stage starts after the one before it ended. The counts are the
+    same in every mode."""
     spans = {}
     counts = {}
     for mode in ("local", "threads", "dask"):
@@ -94,11 +94,14 @@ def test_stages_overlap_where_the_mode_allows_and_the_manifest_is_the_same(runs)
         spans[mode], counts[mode] = m["stage_spans_s"], m["counts"]
     local = sorted(spans["local"].values())
     assert all(b[0] >= a[1] for a, b in zip(local, local[1:], strict=False))
-    th = spans["threads"]
-    # the road graph runs beside the terrain → atmosphere → fleet → compliance chain
-    assert th["road_graph"][0] < th["compliance"][1] and th["terrain"][0] < th["road_graph"][1]
-    assert th["road_graph"][0] >= th["ingest"][1]  # it waits for what it needs
-    assert th["corridors"][0] >= max(th["compliance"][1], th["road_profiles"][1])
+    for mode in ("threads", "dask"):
+        th = spans[mode]
+        # the zones need nothing and start beside the stations' ingest
+        assert th["zones"][0] < th["ingest"][1]
+        assert th["road_graph"][0] >= th["ingest"][1]  # it waits for what it needs
+        assert th["corridors"][0] >= max(th["compliance"][1], th["road_profiles"][1])
+        # the relief is drawn only once the stations are placed (an order, not a need)
+        assert th["basemap"][0] >= th["terrain"][1]
     # the data decide the partitions: every count agrees, partition counts included
     assert counts["threads"] == counts["local"] == counts["dask"]
 
@@ -110,7 +113,8 @@ def test_stages_overlap_where_the_mode_allows_and_the_manifest_is_the_same(runs)
         ("threads", None, 2, 2),
         ("threads", 1, 1, 1),
         ("threads", 4, 2, 2),
-        ("dask", 1, 2, 1),
+        ("dask", 1, 3, 1),
+        ("dask", 2, 3, 1),
     ],
 )
 def test_how_many_stages_run_at_once(mode, workers, expected, per_piece):
@@ -158,3 +162,27 @@ def test_cutting_the_work_changes_no_station_result(runs):
     one, many = runs["one_piece"], runs["local"]
     assert (one / "stations.csv").read_bytes() == (many / "stations.csv").read_bytes()
     assert (one / "supply_plan.csv").read_bytes() == (many / "supply_plan.csv").read_bytes()
+
+
+def test_a_new_relief_size_redraws_the_basemap_alone(small_demo_inputs, tmp_path):
+    """The relief is a stage of its own: changing its size reuses the placed and modelled
+    stations, and changing nothing else leaves every table as it was."""
+    cfgs = {}
+    for px in (400, 300):
+        text = demo_config(small_demo_inputs, 'mode = "threads"\nworkers = 2\n')
+        text = text.replace("[outputs]\n", f"[outputs]\nmap_max_basemap_px = {px}\n", 1)
+        assert f"map_max_basemap_px = {px}" in text
+        cfgs[px] = tmp_path / f"px{px}.toml"
+        cfgs[px].write_text(text, encoding="utf-8")
+    out = tmp_path / "run"
+    first = run_cli("run", str(cfgs[400]), "--out", str(out))
+    assert first.returncode == 0, first.stderr
+    before = (out / "stations.csv").read_bytes()
+    second = run_cli("run", str(cfgs[300]), "--out", str(out))
+    assert second.returncode == 0, second.stderr
+    m = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
+    assert {"ingest", "terrain", "atmosphere", "fleet", "compliance", "corridors"} <= set(
+        m["stages_reused"]
+    )
+    assert "basemap" not in m["stages_reused"]
+    assert (out / "stations.csv").read_bytes() == before

@@ -223,3 +223,54 @@ def test_a_stage_listed_before_its_needs_is_refused(tmp_path):
     stages = [Stage("late", lambda ctx, up: {}, needs=("early",)), Stage("early", _first)]
     with pytest.raises(ValueError, match="late needs"):
         run_stages(stages, _cfg(tmp_path), tmp_path / "o", today=dt.date(2026, 12, 1))
+
+
+def test_start_after_orders_overlapping_stages_without_becoming_a_dependency(tmp_path):
+    """``start_after`` holds a stage back until another has ended where stages overlap, but the
+    stage reads nothing of it: its key is the same with or without the order."""
+    import threading
+    import time
+
+    a_may_end = threading.Event()
+
+    def a(ctx, up):
+        a_may_end.wait(timeout=0.3)  # long enough for an unordered b to start first
+        return {"meta": {"v": 1}}
+
+    def b(ctx, up):
+        a_may_end.set()
+        return {"meta": {"v": 2}}
+
+    keys = {}
+    for order in ((), ("a",)):
+        stages = [Stage("a", a), Stage("b", b, start_after=order)]
+        a_may_end.clear()
+        t = time.perf_counter()
+        r = run_stages(
+            stages,
+            _cfg(tmp_path),
+            tmp_path / f"o{len(order)}",
+            today=dt.date(2026, 12, 1),
+            concurrent_stages=2,
+        )
+        spans = r.manifest["stage_spans_s"]
+        if order:
+            assert spans["b"][0] >= spans["a"][1]  # held back until a ended
+            assert time.perf_counter() - t >= 0.3  # so a waited its whole time out
+        else:
+            assert spans["b"][0] < spans["a"][1]  # free to start at once, and did
+        keys[order] = r.manifest["stage_keys"]
+    assert keys[()] == keys[("a",)]
+
+
+def test_a_stage_started_after_one_listed_later_is_refused(tmp_path):
+    stages = [Stage("x", lambda ctx, up: {}, start_after=("y",)), Stage("y", _first)]
+    with pytest.raises(ValueError, match="x starts after"):
+        run_stages(stages, _cfg(tmp_path), tmp_path / "o", today=dt.date(2026, 12, 1))
+    # a name that is not in the run is ignored (the stage it orders against is switched off)
+    run_stages(
+        [Stage("x", lambda ctx, up: {}, start_after=("absent",))],
+        _cfg(tmp_path),
+        tmp_path / "o2",
+        today=dt.date(2026, 12, 1),
+    )
