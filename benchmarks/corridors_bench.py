@@ -191,11 +191,16 @@ def main(argv=None):
     ap.add_argument("--json", type=Path, help="write the results as JSON to this path")
     ap.add_argument("--stations", type=int, default=None, help="number of stations")
     ap.add_argument("--nx-sources", type=int, default=None, help="sources timed with networkx")
-    ap.add_argument("--no-build", action="store_true",
-                    help="skip timing build_road_graph and edge_profiles")
+    ap.add_argument(
+        "--no-build", action="store_true", help="skip timing build_road_graph and edge_profiles"
+    )
     ap.add_argument("--seed", type=int, default=1)
-    ap.add_argument("--repeat", type=int, default=None,
-                    help="timing repeats (minimum reported); default 3 quick, 2 full")
+    ap.add_argument(
+        "--repeat",
+        type=int,
+        default=None,
+        help="timing repeats (minimum reported); default 3 quick, 2 full",
+    )
     args = ap.parse_args(argv)
 
     side = 151 if args.quick else 501  # 501 → 2·501·500 = 501,000 edges
@@ -204,8 +209,10 @@ def main(argv=None):
     k_nx = args.nx_sources or 5
     rng = np.random.default_rng(args.seed)
     extent = side * spacing
-    res: dict = {"mode": "quick" if args.quick else "full",
-                 "load_average_1min_at_start": os.getloadavg()[0]}
+    res: dict = {
+        "mode": "quick" if args.quick else "full",
+        "load_average_1min_at_start": os.getloadavg()[0],
+    }
 
     t = time.perf_counter()
     graph = grid_graph(side, spacing, rng)
@@ -230,9 +237,19 @@ def main(argv=None):
         with tempfile.TemporaryDirectory() as tmp:
             path = Path(tmp) / "relief.tif"
             with rasterio.open(
-                path, "w", driver="GTiff", width=ncell, height=ncell, count=1, dtype="float32",
-                crs=UTM, transform=from_origin(X0 - spacing, Y0 + spacing, cell, cell),
-                nodata=-9999.0, tiled=True, blockxsize=256, blockysize=256,
+                path,
+                "w",
+                driver="GTiff",
+                width=ncell,
+                height=ncell,
+                count=1,
+                dtype="float32",
+                crs=UTM,
+                transform=from_origin(X0 - spacing, Y0 + spacing, cell, cell),
+                nodata=-9999.0,
+                tiled=True,
+                blockxsize=256,
+                blockysize=256,
             ) as ds:
                 ds.write(z, 1)
             with rasterio.open(path) as ds:
@@ -273,8 +290,13 @@ def main(argv=None):
         batch = 64  # bare trees of 64 sources at a time (distance + predecessor rows)
         t = time.perf_counter()
         for b0 in range(0, src_nodes.size, batch):
-            d, p = dijkstra(graph.adjacency, directed=True, indices=src_nodes[b0:b0 + batch],
-                            limit=params.tank_range_km * 1000.0, return_predecessors=True)
+            d, p = dijkstra(
+                graph.adjacency,
+                directed=True,
+                indices=src_nodes[b0 : b0 + batch],
+                limit=params.tank_range_km * 1000.0,
+                return_predecessors=True,
+            )
             del d, p
         bares.append(time.perf_counter() - t)
     total, bare = min(totals), min(bares)
@@ -284,8 +306,12 @@ def main(argv=None):
     res["edge_directions_with_flow"] = out.summary["edge_directions_with_flow"]
     s = out.stations[out.stations["is_source"]]
     res["conservation_max_rel_error"] = float(
-        ((s["sent_l_per_month"] - s["delivered_l_per_month"] - s["beyond_range_l_per_month"])
-         .abs() / s["sent_l_per_month"]).max()
+        (
+            (
+                s["sent_l_per_month"] - s["delivered_l_per_month"] - s["beyond_range_l_per_month"]
+            ).abs()
+            / s["sent_l_per_month"]
+        ).max()
     )
     res["bare_dijkstra_s_per_source"] = bare / n_src
     res["corridor_vs_bare_dijkstra"] = total / bare
@@ -298,10 +324,16 @@ def main(argv=None):
     req_cols = rg.PROFILE_QUANTILE_COLUMNS
     fwd = graph.entry_forward
     e = graph.entry_edge
-    grade = np.where(fwd, profiles["grade_forward_pct"].to_numpy()[e],
-                     profiles["grade_reverse_pct"].to_numpy()[e])
-    climb = np.where(fwd, profiles["sustained_climb_forward_m"].to_numpy()[e],
-                     profiles["sustained_climb_reverse_m"].to_numpy()[e])
+    grade = np.where(
+        fwd,
+        profiles["grade_forward_pct"].to_numpy()[e],
+        profiles["grade_reverse_pct"].to_numpy()[e],
+    )
+    climb = np.where(
+        fwd,
+        profiles["sustained_climb_forward_m"].to_numpy()[e],
+        profiles["sustained_climb_reverse_m"].to_numpy()[e],
+    )
     req_bins = np.column_stack(
         [invented_requirement(profiles[c].to_numpy()[e], grade, climb) for c in req_cols]
     )
@@ -313,27 +345,39 @@ def main(argv=None):
     t = time.perf_counter()
     nx_out = []
     for i in sub_rows:
-        nx_out.append(networkx_corridor(
-            nxg, graph, int(stations["node"][i]), float(stations["volume_l"][i]),
-            float(stations["aki"][i]), stations["node"].to_numpy(),
-            stations["volume_l"].to_numpy(), int(i), params,
-        ))
+        nx_out.append(
+            networkx_corridor(
+                nxg,
+                graph,
+                int(stations["node"][i]),
+                float(stations["volume_l"][i]),
+                float(stations["aki"][i]),
+                stations["node"].to_numpy(),
+                stations["volume_l"].to_numpy(),
+                int(i),
+                params,
+            )
+        )
     t_nx = time.perf_counter() - t
     res["networkx_sources"] = int(sub_rows.size)
     res["networkx_s_per_source"] = t_nx / sub_rows.size
     res["corridor_vs_networkx"] = res["networkx_s_per_source"] / res["corridor_s_per_source"]
     # same flows? run the module on the subset alone
-    mod = co.compute_corridors(graph, profiles, stations.iloc[sub_rows], dests,
-                               invented_requirement, params)
-    got = {(int(a), int(b)): f for a, b, f in zip(mod.edges["from_node"], mod.edges["to_node"],
-                                                  mod.edges["flow_l_per_month"], strict=True)}
+    mod = co.compute_corridors(
+        graph, profiles, stations.iloc[sub_rows], dests, invented_requirement, params
+    )
+    got = {
+        (int(a), int(b)): f
+        for a, b, f in zip(
+            mod.edges["from_node"], mod.edges["to_node"], mod.edges["flow_l_per_month"], strict=True
+        )
+    }
     ref: dict = {}
     for flows, _ in nx_out:
         for key, f in flows.items():
             ref[key] = ref.get(key, 0.0) + f
     keys = set(ref) | set(got)
-    rel = max(abs(got.get(k, 0.0) - ref.get(k, 0.0)) / max(ref.get(k, 0.0), 1e-300)
-              for k in keys)
+    rel = max(abs(got.get(k, 0.0) - ref.get(k, 0.0)) / max(ref.get(k, 0.0), 1e-300) for k in keys)
     res["networkx_flow_edges"] = len(ref)
     res["flows_max_rel_diff_vs_networkx"] = float(rel)
     risk_nx = np.array([r for _, r in nx_out])
@@ -359,8 +403,10 @@ def main(argv=None):
     if "build_road_graph_s" in res:
         rows += [
             ("build_road_graph s", f"{res['build_road_graph_s']:.1f}"),
-            ("edge_profiles s", f"{res['edge_profiles_s']:.1f} "
-                                f"({res['edge_profiles_samples']:,} samples)"),
+            (
+                "edge_profiles s",
+                f"{res['edge_profiles_s']:.1f} ({res['edge_profiles_samples']:,} samples)",
+            ),
         ]
     w = max(len(r[0]) for r in rows)
     print(f"corridors benchmark ({res['mode']})")
