@@ -20,7 +20,8 @@ Measurements (see benchmarks/README.md for definitions and targets):
   ``state_run_local_*`` with ``mode = "local"``, against an I/O floor (a fresh interpreter
   reading every input once with the same libraries);
 * Dask execution — ``dask_*``: the national subset in ``local`` mode and on a 2-worker local
-  cluster;
+  cluster, with the CPU time of each (client and workers) and the speedup that CPU would
+  allow on this machine's cores at best (``dask_speedup_bound_on_this_machine``);
 * ``--national``: DEM sampling of the national stations over the VRT mosaic;
   ``--national-run`` also times ``altigrade run`` on the national scenario.
 
@@ -85,7 +86,11 @@ def _log(msg: str) -> None:
 def run_measured(
     cmd: list[str], *, cwd: Path | None = None, env: dict | None = None, timeout: float = 3600
 ) -> dict:
-    """Run ``cmd``; its wall time [s], peak RSS [MB], exit code and the tail of its output.
+    """Run ``cmd``; its wall time [s], CPU time [s], peak RSS [MB], exit code and the tail
+    of its output.
+
+    CPU time is user + system time from ``wait4``: the child's and that of every descendant
+    it waited for (a Dask local cluster's worker processes included).
 
     Peak RSS is the child's own ``VmHWM`` (``/proc/<pid>/status``), read every 20 ms while it
     runs; the last reading comes at most 20 ms before it exits. The ``ru_maxrss`` that
@@ -104,7 +109,7 @@ def run_measured(
         watcher = threading.Thread(target=_watch_hwm, args=(proc.pid, peak_kb, done), daemon=True)
         watcher.start()
         try:
-            _, status, _ = os.wait4(proc.pid, 0)
+            _, status, usage = os.wait4(proc.pid, 0)
         finally:
             timer.cancel()
             done.set()
@@ -115,6 +120,7 @@ def run_measured(
         err.seek(0)
         return {
             "wall_s": wall,
+            "cpu_s": usage.ru_utime + usage.ru_stime,
             "peak_rss_mb": peak_kb[0] / 1024.0 if peak_kb[0] else None,
             "returncode": proc.returncode,
             "stdout_tail": out.read().decode(errors="replace")[-3000:],
@@ -293,6 +299,15 @@ def dask_measurements(sc: scenarios.Scenario, notes: dict, workers: int = 2) -> 
     out["dask_local_run_peak_rss_mb"] = runs["local"]["peak_rss_mb"]
     out["dask_client_peak_rss_mb"] = runs["dask"]["peak_rss_mb"]
     out["dask_2_workers_speedup"] = runs["local"]["wall_s"] / runs["dask"]["wall_s"]
+    # CPU of the client and its workers; on os.cpu_count() cores the Dask run cannot finish
+    # sooner than that CPU spread perfectly over them, whatever the scheduling
+    out["dask_local_run_cpu_s"] = runs["local"]["cpu_s"]
+    out["dask_run_cpu_s"] = runs["dask"]["cpu_s"]
+    cores = min(os.cpu_count() or 1, workers + 1)
+    out["dask_speedup_bound_on_this_machine"] = runs["local"]["wall_s"] / (
+        runs["dask"]["cpu_s"] / cores
+    )
+    out["dask_cores"] = os.cpu_count()
     out["dask_results_identical"] = all(same.values())
     out["dask_compared_outputs"] = same
     out["dask_scenario"] = sc.meta.get("name", str(sc.folder.name))
@@ -436,6 +451,9 @@ TABLE_KEYS = (
     "state_run_local_s",
     "state_run_local_vs_io_floor",
     "dask_2_workers_speedup",
+    "dask_local_run_cpu_s",
+    "dask_run_cpu_s",
+    "dask_speedup_bound_on_this_machine",
     "dask_results_identical",
     "national_sampling_pts_per_s",
     "national_sampling_vs_decode_floor",
