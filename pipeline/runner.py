@@ -234,7 +234,7 @@ def run_stages(
     # A stage's key depends on its inputs and its upstream keys, never on results: all keys
     # (and every input file's hash) are known before the first stage runs.
     needs = {s.name: stage_needs(s, config) for s in stages}
-    names = {s.name for s in stages}
+    in_run = {s.name for s in stages}
     upstream = _transitive(stages, needs)
     keys: dict[str, str] = {}
     input_hashes: dict[str, str] = {}
@@ -242,7 +242,7 @@ def run_stages(
         missing = [n for n in needs[stage.name] if n not in keys]
         if missing:
             raise ValueError(f"stage {stage.name} needs {missing}, which do not come before it")
-        later = [n for n in stage.start_after if n in names and n not in keys]
+        later = [n for n in stage.start_after if n in in_run and n not in keys]
         if later:
             raise ValueError(f"stage {stage.name} starts after {later}, listed after it")
         files = [Path(f) for f in stage.input_files(config) if f is not None]
@@ -322,7 +322,7 @@ def run_stages(
             outcomes[stage.name] = run_one(stage)
     else:
         waits_for = {
-            s.name: needs[s.name] + tuple(n for n in s.start_after if n in names) for s in stages
+            s.name: needs[s.name] + tuple(n for n in s.start_after if n in in_run) for s in stages
         }
         _run_concurrently(stages, waits_for, run_one, outcomes, concurrent_stages)
     counts: dict[str, Any] = {}

@@ -188,8 +188,8 @@ def _as_rejected(gdf: gpd.GeoDataFrame, reasons: list[str]) -> gpd.GeoDataFrame:
 
 def _basemap(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     """The maps' hillshade basemap (a PNG and its bounds), from the DEM alone: a stage of its
-    own, so that where stages overlap it is drawn while the stations are placed and
-    modelled, not before them."""
+    own, so that a new relief size keeps the placed stations, and so that where stages
+    overlap it is drawn beside the fleet model instead of holding up the road graph."""
     from pipeline.hillshade import basemap_from_dataset
 
     with io.open_dem(ctx.config.inputs.dem) as ds:
