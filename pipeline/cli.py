@@ -16,7 +16,7 @@ from pipeline import __version__
 from pipeline.cautions import CAUTION_LINE as CAUTION
 from pipeline.errors import AltigradeError
 
-__all__ = ["main", "build_parser"]
+__all__ = ["main", "build_parser", "small_pages_for_numpy"]
 
 
 EPILOG = f"""Exit status: 0 done, 2 bad input or configuration, 1 internal error.
@@ -184,7 +184,28 @@ def _summary(con: _Console, result) -> None:
     con.info(CAUTION)
 
 
+def small_pages_for_numpy(environ: dict[str, str] | None = None) -> bool:
+    """Ask NumPy not to request transparent huge pages for its large arrays, unless the user
+    chose otherwise (``NUMPY_MADVISE_HUGEPAGE`` already set). Returns whether it was set here.
+
+    NumPy reads ``NUMPY_MADVISE_HUGEPAGE`` once, when it is imported ("Global state", NumPy
+    reference manual), so this only acts before the first import of NumPy in this process;
+    the variable is inherited by worker processes started later (Dask workers). On Linux with
+    the transparent huge page policy ``madvise`` and defragmentation on ``madvise``, every
+    fresh large array is faulted in as a 2 MiB page that the kernel compacts memory to find:
+    measured on the state benchmark scenario (2 cores, ``mode = "local"``), system time fell
+    from 6.9 s to 2.1 s and the run from 30.5 s to 24.9 s with it set to 0. Results are the
+    same either way; only where the pages come from changes.
+    """
+    env = os.environ if environ is None else environ
+    if "numpy" in sys.modules or "NUMPY_MADVISE_HUGEPAGE" in env:
+        return False
+    env["NUMPY_MADVISE_HUGEPAGE"] = "0"
+    return True
+
+
 def main(argv: Sequence[str] | None = None) -> int:
+    small_pages_for_numpy()
     parser = build_parser()
     args = parser.parse_args(argv)
     if args.command is None:
