@@ -190,9 +190,12 @@ def derived_roads(ds, endpoints_xy: np.ndarray, grid_cells: int) -> gpd.GeoDataF
     return gpd.GeoDataFrame({"road_class": ["derived"] * len(geoms)}, geometry=geoms, crs=ds.crs)
 
 
-def road_graph_for(cfg: RunConfig, ds, stations: gpd.GeoDataFrame, towns: gpd.GeoDataFrame | None):
+def road_graph_for(
+    cfg: RunConfig, ds, stations: gpd.GeoDataFrame | None, towns: gpd.GeoDataFrame | None
+):
     """The routable road graph of a run: the road layer, or roads derived from the DEM between
-    stations and towns when there is none. Returns (graph, description of the source)."""
+    stations (required then) and towns when there is none. Returns (graph, description of
+    the source)."""
     if cfg.inputs.roads is not None:
         roads = io.read_vector(cfg.inputs.roads, what="roads", arrow=True)
         source = "road layer"
@@ -283,9 +286,10 @@ def _towns(cfg: RunConfig) -> gpd.GeoDataFrame | None:
 
 
 def road_graph_needs(cfg: RunConfig) -> tuple[str, ...]:
-    """Stages the road graph needs: the station table alone with a road layer; the stations
-    placed on the DEM (terrain) when roads are derived between them."""
-    return ("ingest",) if cfg.inputs.roads is not None else ("terrain",)
+    """Stages the road graph needs: none with a road layer (it is read from the file alone, so
+    it can start with the run); the stations placed on the DEM (terrain) when roads are
+    derived between them."""
+    return () if cfg.inputs.roads is not None else ("terrain",)
 
 
 def road_graph_used(cfg: RunConfig) -> bool:
@@ -300,8 +304,9 @@ def road_graph_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     cfg: RunConfig = ctx.config
     if not road_graph_used(cfg):
         return {"graph": None}
-    stations = up["ingest" if cfg.inputs.roads is not None else "terrain"]["stations"]
-    towns = _towns(cfg) if cfg.inputs.roads is None else None
+    derived = cfg.inputs.roads is None
+    stations = up["terrain"]["stations"] if derived else None
+    towns = _towns(cfg) if derived else None
     with io.open_dem(cfg.inputs.dem) as ds:
         graph, source = road_graph_for(cfg, ds, stations, towns)
     ctx.counts["road_graph"] = {

@@ -263,6 +263,61 @@ def test_start_after_orders_overlapping_stages_without_becoming_a_dependency(tmp
     assert keys[()] == keys[("a",)]
 
 
+def test_chain_lengths_count_the_longest_chain_waiting_for_each_stage():
+    from pipeline.runner import chain_lengths
+
+    noop = lambda ctx, up: {}  # noqa: E731
+    stages = [
+        Stage("a", noop),
+        Stage("b", noop, needs=("a",)),
+        Stage("c", noop, needs=("b",)),
+        Stage("d", noop),
+        Stage("e", noop, start_after=("d",)),
+        Stage("f", noop, needs=("c", "d")),
+    ]
+    waits = {s.name: s.needs + s.start_after for s in stages}
+    assert chain_lengths(stages, waits) == {"a": 3, "b": 2, "c": 1, "d": 1, "e": 0, "f": 0}
+
+
+def test_among_ready_stages_the_head_of_the_longest_chain_starts_first(tmp_path):
+    """Two slots, three stages ready at once: ``short`` and ``alone`` come first in the list,
+    but ``head`` starts a chain of two more stages, so it takes a slot ahead of ``alone``
+    (list order alone would have started ``short`` and ``alone``)."""
+    import threading
+
+    started: list[str] = []
+    lock = threading.Lock()
+    both_first = threading.Barrier(2, timeout=5.0)  # broken unless short and head overlap
+    overlapping = [True]
+
+    def body(name, meet=False):
+        def run(ctx, up):
+            with lock:
+                started.append(name)
+            if meet and overlapping[0]:
+                both_first.wait()
+            return {"meta": {"v": name}}
+
+        return run
+
+    stages = [
+        Stage("short", body("short", meet=True)),
+        Stage("alone", body("alone")),
+        Stage("head", body("head", meet=True)),
+        Stage("middle", body("middle"), needs=("head",)),
+        Stage("tail", body("tail"), needs=("middle", "short")),
+    ]
+    run_stages(
+        stages, _cfg(tmp_path), tmp_path / "o", today=dt.date(2026, 12, 1), concurrent_stages=2
+    )
+    assert set(started[:2]) == {"short", "head"}
+    # and one at a time, list order still decides
+    started.clear()
+    overlapping[0] = False
+    run_stages(stages, _cfg(tmp_path), tmp_path / "o1", today=dt.date(2026, 12, 1))
+    assert started == ["short", "alone", "head", "middle", "tail"]
+
+
 def test_a_stage_started_after_one_listed_later_is_refused(tmp_path):
     stages = [Stage("x", lambda ctx, up: {}, start_after=("y",)), Stage("y", _first)]
     with pytest.raises(ValueError, match="x starts after"):
