@@ -531,6 +531,7 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
             else table
         )
         texts[f"{name}.csv"] = io.csv_text(frame)
+    from pipeline.layer_writer import write_gpkg_layers_in_child
     from pipeline.maps import audience_maps
     from pipeline.report import build_report_html
     from pipeline.webmap import build_map_html
@@ -541,13 +542,16 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     with io.atomic_path(gpkg) as gpkg_tmp, ThreadPoolExecutor(1) as writer:
         t0 = time.perf_counter()
 
-        def write_layers() -> float:
+        def write_layers(in_child: bool) -> float:
             start = time.perf_counter()
-            io.write_gpkg_layers_into(gpkg_tmp, layers, crs, final=gpkg)
+            if in_child:  # GDAL's writer holds the interpreter lock: not beside the drawing
+                write_gpkg_layers_in_child(gpkg_tmp, layers, crs, final=gpkg)
+            else:
+                io.write_gpkg_layers_into(gpkg_tmp, layers, crs, final=gpkg)
             return time.perf_counter() - start
 
         overlap = ctx.executor is not None and ctx.executor.overlaps_stages
-        written = writer.submit(write_layers) if overlap else None
+        written = writer.submit(write_layers, True) if overlap else None
         # the documents are independent: render them as separate pieces
         docs = [
             (name, build_map_html, {"spec": spec})
@@ -558,7 +562,7 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         rendered = _map(ctx, _render, [(fn, kw) for _, fn, kw in docs], {})
         texts.update(zip([name for name, _, _ in docs], rendered, strict=True))
         ctx.part_timings["publish/documents"] = time.perf_counter() - t0
-        geopackage_s = write_layers() if written is None else written.result()
+        geopackage_s = write_layers(False) if written is None else written.result()
         ctx.part_timings["publish/geopackage"] = geopackage_s
     for fname, text in texts.items():
         io.write_text_atomic(out / fname, text)
