@@ -23,6 +23,7 @@ from pipeline import requirement as rq
 from pipeline.config import RunConfig
 from pipeline.corridors import compute_corridors, corridor_lines
 from pipeline.errors import InputFileError
+from pipeline.execution import fewer_full_collections
 from pipeline.partitions import spatial_partitions
 from pipeline.roadgraph import (
     build_road_graph,
@@ -307,7 +308,8 @@ def road_graph_stage(ctx, up: dict[str, dict[str, Any]]) -> dict[str, Any]:
     derived = cfg.inputs.roads is None
     stations = up["terrain"]["stations"] if derived else None
     towns = _towns(cfg) if derived else None
-    with io.open_dem(cfg.inputs.dem) as ds:
+    # arrays of half a million geometries: no full garbage collection after each one
+    with io.open_dem(cfg.inputs.dem) as ds, fewer_full_collections():
         graph, source = road_graph_for(cfg, ds, stations, towns)
     ctx.counts["road_graph"] = {
         k: v for k, v in graph.stats.items() if not isinstance(v, dict | list)

@@ -246,9 +246,6 @@ class Executor:
         # matplotlib: about two seconds more per worker, measured)
         for module in _WORKER_MODULES:
             self._client.run(importlib.import_module, module)
-        # the workers build as many geometries as the run's own process (see
-        # fewer_full_collections); only the workers of the cluster started here are tuned
-        self._client.run(gc.set_threshold, *RUN_GC_THRESHOLDS)
 
 
 #: Modules every worker of a local cluster imports when it starts.
@@ -277,13 +274,14 @@ def share_one_malloc_arena() -> bool:
         return False
 
 
-#: Thresholds of CPython's cyclic garbage collector during a run (its default: 700, 10, 10).
+#: Thresholds of CPython's cyclic garbage collector while a road graph is read and built
+#: (its default: 700, 10, 10).
 RUN_GC_THRESHOLDS = (50_000, 20, 100)
 
 
 @contextlib.contextmanager
 def fewer_full_collections():
-    """Collect cyclic garbage less often while a run lasts; the thresholds are restored after.
+    """Collect cyclic garbage less often for a while; the thresholds are restored after.
 
     Shapely geometries are objects the collector tracks, and the road graph alone makes
     several arrays of half a million of them. Each time such an array is made, CPython's rule
@@ -291,9 +289,11 @@ def fewer_full_collections():
     documentation and ``Modules/gcmodule.c``) set off a pass over every tracked object of the
     process, with the interpreter lock held and nothing to collect. Measured on the state
     scenario (``threads``, callbacks on ``gc.callbacks``): 15 full collections of 0.06–0.21 s,
-    1.8 s in all, 8 of them while the road graph was built; with these thresholds none, and
-    0.36 s for every collection together, with the same peak RSS (2.24 against 2.26 GB).
-    Young cyclic garbage is still collected (every 50,000 allocations of tracked objects).
+    1.8 s in all, 8 of them while the road graph was built; with these thresholds for the
+    whole run none. Used around the road graph only: held for a whole run, the national
+    subset's peak RSS rose from 0.93 to 1.05 GB and the whole national scenario's run peaked
+    at 13.6 GB (cyclic garbage waiting for a full collection, we infer); around the road graph
+    alone the national subset's peak is 0.94 GB.
     """
     old = gc.get_threshold()
     gc.set_threshold(*(max(a, b) for a, b in zip(old, RUN_GC_THRESHOLDS, strict=True)))

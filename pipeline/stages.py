@@ -29,7 +29,7 @@ from pipeline.corridor_stage import (
     road_profiles_stage,
 )
 from pipeline.errors import InputFileError
-from pipeline.execution import fewer_full_collections, make_executor
+from pipeline.execution import make_executor
 from pipeline.ingest import validate_stations
 from pipeline.partitions import partition_slices, spatial_partitions
 from pipeline.plan_stage import plans_stage
@@ -817,7 +817,7 @@ def run(
     _check_out_dir(out)
     _check_inputs_not_in(out, config)
     today = today or run_date()
-    with fewer_full_collections(), make_executor(config.execution, config.source) as executor:
+    with make_executor(config.execution, config.source) as executor:
         executor.warm_up()
         stages = [*STAGES, _publish_stage()]
         result = run_stages(

@@ -4,8 +4,8 @@
   Checked in fresh interpreters, against NumPy itself: ``_set_madvise_hugepage`` returns the
   setting NumPy took at import (NumPy reference manual, "Global state"; the function is
   NumPy's own switch, private, used here only to read the setting back).
-- A run collects cyclic garbage less often and restores the collector's thresholds after
-  (CPython ``gc.get_threshold`` / ``gc.set_threshold``).
+- The road graph is read and built collecting cyclic garbage less often; the collector's
+  thresholds are restored after (CPython ``gc.get_threshold`` / ``gc.set_threshold``).
 """
 
 from __future__ import annotations
@@ -59,8 +59,10 @@ def test_nothing_changes_once_numpy_is_imported():
     assert env == {}
 
 
-def test_a_run_raises_the_collector_thresholds_and_restores_them(tmp_path, monkeypatch):
-    import pipeline.stages as stages
+def test_the_road_graph_is_built_under_raised_thresholds_restored_after(
+    small_demo_inputs, tmp_path, monkeypatch
+):
+    import pipeline.corridor_stage as cs
     from pipeline.execution import RUN_GC_THRESHOLDS
 
     seen = []
@@ -68,19 +70,33 @@ def test_a_run_raises_the_collector_thresholds_and_restores_them(tmp_path, monke
     class Stop(Exception):
         pass
 
-    def executor_probe(*args, **kwargs):  # called inside the run, as the run starts
+    def build_probe(roads):  # called where the road graph is built, after the roads are read
         seen.append(gc.get_threshold())
         raise Stop
 
-    monkeypatch.setattr(stages, "make_executor", executor_probe)
-    (tmp_path / "st.csv").write_text("x", encoding="utf-8")
-    cfg = parse_config({"inputs": {"stations": "st.csv", "dem": "d.tif"}}, base_dir=tmp_path)
+    monkeypatch.setattr(cs, "build_road_graph", build_probe)
+    d = small_demo_inputs
+    cfg = parse_config(
+        {
+            "inputs": {
+                "stations": str(d / "stations.csv"),
+                "dem": str(d / "dem.tif"),
+                "roads": str(d / "roads.gpkg"),
+            }
+        },
+        base_dir=tmp_path,
+    )
+
+    class Ctx:
+        config = cfg
+        counts: dict = {}
+
     before = gc.get_threshold()
     assert before != RUN_GC_THRESHOLDS  # CPython's default (700, 10, 10), or close
     with pytest.raises(Stop):
-        stages.run(cfg, tmp_path / "out")
+        cs.road_graph_stage(Ctx(), {})
     assert seen == [RUN_GC_THRESHOLDS]
-    assert gc.get_threshold() == before  # restored, even though the run failed
+    assert gc.get_threshold() == before  # restored, even though the stage failed
 
 
 def test_thresholds_already_higher_are_kept():
