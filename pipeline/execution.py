@@ -41,7 +41,7 @@ __all__ = [
     "make_executor",
     "share_one_malloc_arena",
     "fewer_full_collections",
-    "RUN_GC_THRESHOLDS",
+    "ROAD_GRAPH_GC_THRESHOLDS",
 ]
 
 
@@ -276,7 +276,7 @@ def share_one_malloc_arena() -> bool:
 
 #: Thresholds of CPython's cyclic garbage collector while a road graph is read and built
 #: (its default: 700, 10, 10).
-RUN_GC_THRESHOLDS = (50_000, 20, 100)
+ROAD_GRAPH_GC_THRESHOLDS = (50_000, 20, 100)
 
 
 @contextlib.contextmanager
@@ -296,7 +296,7 @@ def fewer_full_collections():
     alone the national subset's peak is 0.94 GB.
     """
     old = gc.get_threshold()
-    gc.set_threshold(*(max(a, b) for a, b in zip(old, RUN_GC_THRESHOLDS, strict=True)))
+    gc.set_threshold(*(max(a, b) for a, b in zip(old, ROAD_GRAPH_GC_THRESHOLDS, strict=True)))
     try:
         yield
     finally:

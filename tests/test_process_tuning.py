@@ -63,7 +63,7 @@ def test_the_road_graph_is_built_under_raised_thresholds_restored_after(
     small_demo_inputs, tmp_path, monkeypatch
 ):
     import pipeline.corridor_stage as cs
-    from pipeline.execution import RUN_GC_THRESHOLDS
+    from pipeline.execution import ROAD_GRAPH_GC_THRESHOLDS
 
     seen = []
 
@@ -92,10 +92,10 @@ def test_the_road_graph_is_built_under_raised_thresholds_restored_after(
         counts: dict = {}
 
     before = gc.get_threshold()
-    assert before != RUN_GC_THRESHOLDS  # CPython's default (700, 10, 10), or close
+    assert before != ROAD_GRAPH_GC_THRESHOLDS  # CPython's default (700, 10, 10), or close
     with pytest.raises(Stop):
         cs.road_graph_stage(Ctx(), {})
-    assert seen == [RUN_GC_THRESHOLDS]
+    assert seen == [ROAD_GRAPH_GC_THRESHOLDS]
     assert gc.get_threshold() == before  # restored, even though the stage failed
 
 
