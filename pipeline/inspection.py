@@ -70,6 +70,7 @@ from __future__ import annotations
 
 import datetime as dt
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
@@ -457,7 +458,7 @@ def _sig3(x: float) -> str:
     return f"{v:,.{max(d, 0)}f}"
 
 
-def _phrase(component: str, row: pd.Series) -> str:
+def _phrase(component: str, row: Mapping[str, Any]) -> str:
     """Plain-English phrase for one component of one station."""
     if component == "verdict":
         v = row["verdict"]
@@ -548,8 +549,11 @@ def inspection_priorities(
 
     reasons = []
     top = weights.reason_top_n
+    # one station's values as ``comp.iloc[i]`` holds them (NumPy scalars), without building a
+    # Series per station (most of this function's time on 15,000 stations, measured)
+    columns = {c: comp[c].to_numpy() for c in comp.columns}
     for i in range(len(stations)):
-        row = comp.iloc[i]
+        row = {c: v[i] for c, v in columns.items()}
         order = np.argsort(-mat[i], kind="stable")[:top]
         parts = [_phrase(SCORE_COMPONENTS[k], row) for k in order if mat[i, k] > 0]
         reasons.append("; ".join(parts) if parts else "no priority factor present")
