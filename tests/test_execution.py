@@ -9,6 +9,7 @@ every GeoPackage layer (read back with GDAL) and every CSV must be identical to 
 from __future__ import annotations
 
 import json
+import time
 from pathlib import Path
 
 import pytest
@@ -31,7 +32,23 @@ def demo_config(inputs: Path, execution: str) -> str:
 
 
 @pytest.fixture(scope="module")
-def runs(small_demo_inputs, tmp_path_factory) -> dict[str, Path]:
+def running_cluster():
+    """A Dask LocalCluster of two worker processes on the loopback interface, already up
+    before the run connects to it (so every partition goes to the cluster)."""
+    from distributed import LocalCluster
+
+    with LocalCluster(
+        n_workers=2,
+        threads_per_worker=1,
+        processes=True,
+        host="127.0.0.1",
+        dashboard_address=None,
+    ) as cluster:
+        yield cluster.scheduler_address
+
+
+@pytest.fixture(scope="module")
+def runs(small_demo_inputs, tmp_path_factory, running_cluster) -> dict[str, Path]:
     base = tmp_path_factory.mktemp("modes")
     out = {}
     for mode, extra in (
@@ -39,6 +56,7 @@ def runs(small_demo_inputs, tmp_path_factory) -> dict[str, Path]:
         ("local", 'mode = "local"\n'),
         ("threads", 'mode = "threads"\nworkers = 2\n'),
         ("dask", 'mode = "dask"\nworkers = 2\n'),
+        ("dask_running", f'mode = "dask"\nscheduler = "{running_cluster}"\n'),
     ):
         cfg = base / f"{mode}.toml"
         cuts = "" if mode == "one_piece" else PARTITIONS
@@ -49,7 +67,7 @@ def runs(small_demo_inputs, tmp_path_factory) -> dict[str, Path]:
     return out
 
 
-@pytest.mark.parametrize("mode", ["threads", "dask"])
+@pytest.mark.parametrize("mode", ["threads", "dask", "dask_running"])
 def test_every_layer_and_table_identical_to_the_single_process_run(runs, mode):
     ref, got = runs["local"], runs[mode]
     assert layer_hashes(got / "altigrade.gpkg") == layer_hashes(ref / "altigrade.gpkg")
@@ -62,21 +80,33 @@ def test_every_layer_and_table_identical_to_the_single_process_run(runs, mode):
         assert (got / name).read_bytes() == (ref / name).read_bytes(), name
 
 
-def test_the_work_really_was_partitioned_and_distributed(runs):
+def test_the_work_really_was_partitioned_and_distributed(runs, running_cluster):
+    keys = (
+        "station_sampling_partitions",
+        "fleet_partitions",
+        "edge_profile_partitions",
+        "corridor_partitions",
+    )
     m = json.loads((runs["dask"] / "manifest.json").read_text(encoding="utf-8"))
-    assert m["execution"] == {
+    ex = m["execution"]
+    assert {k: ex[k] for k in ("mode", "workers", "scheduler", "started")} == {
         "mode": "dask",
         "workers": 2,
         "scheduler": "local cluster on 127.0.0.1",
         "started": True,
     }
-    for key in (
-        "station_sampling_partitions",
-        "fleet_partitions",
-        "edge_profile_partitions",
-        "corridor_partitions",
-    ):
+    for key in keys:
         assert m["counts"][key] >= 3, key
+    # every partition ran somewhere: in this process while the cluster started, or on it
+    pieces = ex["partitions_on_cluster"] + ex["partitions_in_client_while_starting"]
+    assert pieces >= sum(m["counts"][k] for k in keys)
+    # connected to a cluster that is already up, the partitions go to the cluster (at most
+    # the first stage's first ones run here while the client connects)
+    ready = json.loads((runs["dask_running"] / "manifest.json").read_text(encoding="utf-8"))
+    ex = ready["execution"]
+    assert ex["scheduler"] == running_cluster and ex["workers"] == 2
+    assert ex["partitions_on_cluster"] >= sum(ready["counts"][k] for k in keys)
+    assert ex["partitions_in_client_while_starting"] < ex["partitions_on_cluster"] / 4
     local = json.loads((runs["local"] / "manifest.json").read_text(encoding="utf-8"))
     assert local["execution"] == {"mode": "local", "workers": 1}
     # the mode is not part of any stage's key: a cached stage serves every mode
@@ -187,3 +217,92 @@ def test_a_new_relief_size_redraws_the_basemap_alone(small_demo_inputs, tmp_path
     )
     assert "basemap" not in m["stages_reused"]
     assert (out / "stations.csv").read_bytes() == before
+
+
+class _FakeClient:
+    """Stands in for ``distributed.Client``: runs the mapped function in this process and
+    records which items reached it (the order logic is under test, not Dask)."""
+
+    def __init__(self):
+        self.items: list = []
+
+    def scatter(self, data, broadcast=False, hash=True):
+        return [_Done(v) for v in data]
+
+    def map(self, fn, futures, pure=True, **shared):
+        self.items += [f.value for f in futures]
+        kw = {k: f.value for k, f in shared.items()}
+        return [_Done(fn(f.value, **kw)) for f in futures]
+
+    def gather(self, futures):
+        return [f.value for f in futures]
+
+    def scheduler_info(self):
+        return {"workers": {"w1": {}, "w2": {}}}
+
+    def close(self):
+        pass
+
+
+class _Done:
+    def __init__(self, value):
+        self.value = value
+
+    def release(self):
+        pass
+
+
+def test_partitions_run_here_while_the_cluster_starts_then_on_the_cluster(monkeypatch):
+    """While the cluster starts, the client works through the items itself, in order; once it
+    is up, the rest go to the cluster; the results come back in item order either way."""
+    import threading
+
+    from pipeline.config import ExecutionConfig
+    from pipeline.execution import Executor
+
+    up = threading.Event()
+    client = _FakeClient()
+
+    def connect(self):
+        assert up.wait(30)
+        self._client = client
+
+    monkeypatch.setattr(Executor, "_connect", connect)
+    here = []
+
+    def piece(item, *, scale):
+        here.append(item)
+        if item == 2:  # the cluster comes up while the third piece runs here
+            up.set()
+            time.sleep(0.2)  # let the starting thread finish
+        return item * scale
+
+    with Executor(ExecutionConfig(mode="dask", workers=2)) as ex:
+        ex.warm_up()
+        assert ex.map(piece, range(7), shared={"scale": 10}) == [0, 10, 20, 30, 40, 50, 60]
+        assert client.items == [3, 4, 5, 6]  # the cluster got the rest, in order
+        assert here == [0, 1, 2, 3, 4, 5, 6]  # (the fake cluster runs in this process too)
+        # the cluster is up now: a later stage's pieces all go to it
+        assert ex.map(piece, [7, 8], shared={"scale": 1}) == [7, 8]
+        assert client.items[-2:] == [7, 8]
+        described = ex.describe()
+    assert described["partitions_in_client_while_starting"] == 3
+    assert described["partitions_on_cluster"] == 6
+
+
+def test_a_cluster_that_fails_to_start_still_fails_the_run(monkeypatch):
+    """Pieces run here while the cluster starts; its start-up error is raised all the same."""
+    from pipeline.config import ExecutionConfig
+    from pipeline.errors import ConfigError
+    from pipeline.execution import Executor
+
+    def connect(self):
+        time.sleep(0.3)
+        raise ConfigError("execution.scheduler: nothing answered")
+
+    monkeypatch.setattr(Executor, "_connect", connect)
+    ex = Executor(ExecutionConfig(mode="dask", workers=2))
+    ex.warm_up()
+    with pytest.raises(ConfigError, match="nothing answered"):
+        ex.map(lambda i: (time.sleep(0.05), i)[1], range(100))
+    ex.close()
