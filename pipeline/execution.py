@@ -50,10 +50,10 @@ class Executor:
 
     Create with :func:`make_executor`; use as a context manager (a Dask cluster started for
     the run is shut down on exit). The cluster starts on :meth:`warm_up` (in the background)
-    or on the first :meth:`map` call. While it starts in the background, :meth:`map` runs
-    the partitions in this process, one after another, and hands the remaining ones to the
-    cluster as soon as it is up (on two cores a local cluster takes seconds to start, longer
-    than the first stages' partitions take here).
+    or on the first :meth:`map` call. While a local cluster starts in the background,
+    :meth:`map` runs the partitions in this process, one after another, and hands the
+    remaining ones to the cluster as soon as it is up (on two cores a local cluster takes
+    seconds to start, longer than the first stages' partitions take here).
     """
 
     def __init__(self, config: ExecutionConfig, source: Path | None = None):
@@ -66,6 +66,7 @@ class Executor:
         self._starting: threading.Thread | None = None
         self._start_error: BaseException | None = None
         self._lock = threading.Lock()
+        self._forked = False  # workers of the local cluster forked from a ready fork server
         self._pieces = {"in_client": 0, "on_cluster": 0}
 
     def warm_up(self) -> None:
@@ -77,6 +78,8 @@ class Executor:
             share_one_malloc_arena()
         if self.mode != "dask" or self._client is not None or self._starting is not None:
             return
+        if not self.config.scheduler:  # first, so that it starts before the stages' threads
+            self._forked = _start_fork_server()
 
         def connect() -> None:
             try:
@@ -138,31 +141,7 @@ class Executor:
         if self.mode == "threads":
             pool = self._thread_pool()
             return list(pool.map(lambda it: fn(it, **shared), items))
-        # While the cluster is still starting (worker processes importing the pipeline for
-        # seconds), this process works through the items itself, in order; the rest go to the
-        # cluster once it is up. Same function, same items, same order: same results.
-        here: list[Any] = []
-        while len(here) < len(items) and self._cluster_starting():
-            here.append(fn(items[len(here)], **shared))
-        self._count_pieces(in_client=len(here))
-        if len(here) == len(items):
-            return here
-        client = self._dask_client()
-        rest = items[len(here) :]
-        # one future per shared value (a dict or list given alone would be split up)
-        scattered = {
-            k: client.scatter([v], broadcast=True, hash=False)[0] for k, v in shared.items()
-        }
-        # the items go to the cluster as data of their own, not inside the task graph
-        item_futures = client.scatter(rest, hash=False)
-        futures = client.map(fn, item_futures, pure=False, **scattered)
-        try:
-            there = client.gather(futures)
-        finally:
-            for f in [*futures, *item_futures, *scattered.values()]:
-                f.release()
-        self._count_pieces(on_cluster=len(rest))
-        return here + there
+        return self._map_dask(fn, items, shared)
 
     def close(self) -> None:
         self._wait_for_start(raise_error=False)
@@ -194,6 +173,81 @@ class Executor:
         return out
 
     # -------------------------------------------------------------------------- internals
+    def _map_dask(self, fn: Callable[..., Any], items: list[Any], shared: dict[str, Any]) -> list:
+        """:meth:`map` in ``dask`` mode.
+
+        While the cluster is still starting (worker processes importing the pipeline, for
+        seconds), this thread works through the items itself, in order. The moment the
+        cluster is up, every item not yet begun goes to it, while the item in hand here is
+        finished. Same function, same items, results in item order: the same results.
+        """
+        results: list[Any] = [None] * len(items)
+        claims = _Claims(len(items))
+        handed: dict[str, Any] = {}
+        if self._cluster_starting():
+            helper = threading.Thread(
+                target=self._hand_over_when_up,
+                args=(fn, items, shared, claims, handed),
+                name="altigrade-dask-handover",
+                daemon=True,
+            )
+            helper.start()
+            here = 0
+            while self._cluster_starting() and (i := claims.one()) is not None:
+                results[i] = fn(items[i], **shared)
+                here += 1
+            helper.join()
+            self._count_pieces(in_client=here)
+        if "error" in handed:
+            raise handed["error"]
+        if "futures" not in handed:
+            rest = claims.rest()
+            if not rest:
+                return results
+            handed.update(self._submit(self._dask_client(), fn, items, shared, rest))
+        try:
+            there = self._client.gather(handed["futures"])
+        finally:
+            for f in handed["to_release"]:
+                f.release()
+        for i, value in zip(handed["indices"], there, strict=True):
+            results[i] = value
+        self._count_pieces(on_cluster=len(handed["indices"]))
+        return results
+
+    def _hand_over_when_up(self, fn, items, shared, claims: _Claims, handed: dict) -> None:
+        """Waits for the cluster to be up, then sends it every item not yet begun here
+        (nothing if the items are all begun first or the cluster fails to start)."""
+        try:
+            while not claims.exhausted():
+                starting = self._starting
+                if starting is None or not starting.is_alive():
+                    break
+                starting.join(0.02)
+            client = self._client
+            if claims.exhausted() or client is None:
+                return
+            rest = claims.rest()
+            if rest:
+                handed.update(self._submit(client, fn, items, shared, rest))
+        except BaseException as exc:  # re-raised by map() in the stage's thread
+            handed["error"] = exc
+
+    @staticmethod
+    def _submit(client, fn, items, shared, indices: range) -> dict[str, Any]:
+        # one future per shared value (a dict or list given alone would be split up)
+        scattered = {
+            k: client.scatter([v], broadcast=True, hash=False)[0] for k, v in shared.items()
+        }
+        # the items go to the cluster as data of their own, not inside the task graph
+        item_futures = client.scatter([items[i] for i in indices], hash=False)
+        futures = client.map(fn, item_futures, pure=False, **scattered)
+        return {
+            "indices": indices,
+            "futures": futures,
+            "to_release": [*futures, *item_futures, *scattered.values()],
+        }
+
     def _thread_pool(self) -> ThreadPoolExecutor:
         if self._pool is None:
             self._pool = ThreadPoolExecutor(
@@ -203,9 +257,11 @@ class Executor:
         return self._pool
 
     def _cluster_starting(self) -> bool:
-        """Whether the cluster is being started in the background and is not up yet."""
+        """Whether a local cluster is being started in the background and is not up yet.
+        (Connecting to a running scheduler takes a moment; a scheduler that does not answer
+        must stop the run, not leave it to finish here unnoticed.)"""
         starting = self._starting  # another stage's thread may clear it meanwhile
-        return starting is not None and starting.is_alive()
+        return not self.config.scheduler and starting is not None and starting.is_alive()
 
     def _count_pieces(self, in_client: int = 0, on_cluster: int = 0) -> None:
         with self._lock:
@@ -247,20 +303,13 @@ class Executor:
                     f"({type(exc).__name__})"
                 ) from None
             return
-        # Dask starts workers with MALLOC_TRIM_THRESHOLD_ set, which turns off glibc's
-        # adaptive mmap threshold: every large temporary array is then mapped and unmapped
-        # afresh, and the fleet model's vectorised solvers ran at half speed in a worker
-        # (measured). The thread limits are kept.
-        environ = {
-            k: v
-            for k, v in dask.config.get("distributed.nanny.pre-spawn-environ", {}).items()
-            if k != "MALLOC_TRIM_THRESHOLD_"
-        }
         # no statistical profiler in the workers: it takes the GIL every few milliseconds
         settings = {
-            "distributed.nanny.pre-spawn-environ": environ,
+            "distributed.nanny.pre-spawn-environ": _worker_environ(),
             "distributed.worker.profile.enabled": False,
         }
+        if self._forked or _start_fork_server():
+            settings["distributed.worker.multiprocessing-method"] = "forkserver"
         with dask.config.set(settings):
             self._cluster = LocalCluster(
                 n_workers=self.config.workers or os.cpu_count() or 1,
@@ -277,6 +326,85 @@ class Executor:
         # matplotlib: about two seconds more per worker, measured)
         for module in _WORKER_MODULES:
             self._client.run(importlib.import_module, module)
+
+
+def _worker_environ() -> dict[str, Any]:
+    """The environment Dask sets before it starts a local worker
+    (``distributed.nanny.pre-spawn-environ``), less ``MALLOC_TRIM_THRESHOLD_``.
+
+    Dask sets that one to turn off glibc's adaptive mmap threshold, after which every large
+    temporary array is mapped and unmapped afresh: the fleet model's vectorised solvers ran
+    at half speed in a worker (measured). The thread limits are kept.
+    """
+    import dask
+
+    return {
+        k: v
+        for k, v in dask.config.get("distributed.nanny.pre-spawn-environ", {}).items()
+        if k != "MALLOC_TRIM_THRESHOLD_"
+    }
+
+
+def _start_fork_server() -> bool:
+    """Start Python's fork server (``multiprocessing`` start method ``forkserver``) now, with
+    the pipeline, Dask's worker and the map and report code imported in it, so that each
+    worker of a local cluster is forked from it ready to work, instead of being a fresh
+    interpreter that imports all of that again (about two seconds of CPU per worker,
+    measured). Returns False where the platform has no fork server (the workers are then
+    spawned, Dask's default).
+
+    The server's environment is the one each worker would be spawned with:
+    :func:`_worker_environ` (values already in this process's environment kept) and the
+    fixed hash seed the Dask nanny sets, so that all workers hash alike. Both are also set in
+    this process's environment, as the nanny itself does before it starts a worker.
+    """
+    import multiprocessing
+    from multiprocessing import forkserver
+
+    if "forkserver" not in multiprocessing.get_all_start_methods():
+        return False
+    env = {k: os.environ.get(k, str(v)) for k, v in _worker_environ().items() if v is not None}
+    if env.get("PYTHONHASHSEED") in (None, "0"):
+        env["PYTHONHASHSEED"] = _DASK_HASH_SEED
+    os.environ.update(env)
+    multiprocessing.get_context("forkserver").set_forkserver_preload(
+        ["distributed", "distributed.nanny", *_WORKER_MODULES]
+    )
+    forkserver.ensure_running()
+    return True
+
+
+#: The hash seed the Dask nanny gives its workers (``distributed.nanny.Nanny``), so that all
+#: of them hash alike.
+_DASK_HASH_SEED = "6640"
+
+
+class _Claims:
+    """Hands out the indices 0 … n-1 in order, each once, to whichever thread asks first."""
+
+    def __init__(self, n: int):
+        self._n = n
+        self._next = 0
+        self._lock = threading.Lock()
+
+    def one(self) -> int | None:
+        """The next index, or None when all are handed out."""
+        with self._lock:
+            if self._next >= self._n:
+                return None
+            self._next += 1
+            return self._next - 1
+
+    def rest(self) -> range:
+        """Every index not yet handed out (possibly none)."""
+        with self._lock:
+            out = range(self._next, self._n)
+            self._next = self._n
+            return out
+
+    def exhausted(self) -> bool:
+        with self._lock:
+            return self._next >= self._n
 
 
 #: Modules every worker of a local cluster imports when it starts.

@@ -9,6 +9,7 @@ every GeoPackage layer (read back with GDAL) and every CSV must be identical to 
 from __future__ import annotations
 
 import json
+import sys
 import time
 from pathlib import Path
 
@@ -42,7 +43,7 @@ def running_cluster():
         threads_per_worker=1,
         processes=True,
         host="127.0.0.1",
-        dashboard_address=None,
+        dashboard_address="127.0.0.1:0",  # any free port: the runs' own clusters use 8787
     ) as cluster:
         yield cluster.scheduler_address
 
@@ -100,13 +101,12 @@ def test_the_work_really_was_partitioned_and_distributed(runs, running_cluster):
     # every partition ran somewhere: in this process while the cluster started, or on it
     pieces = ex["partitions_on_cluster"] + ex["partitions_in_client_while_starting"]
     assert pieces >= sum(m["counts"][k] for k in keys)
-    # connected to a cluster that is already up, the partitions go to the cluster (at most
-    # the first stage's first ones run here while the client connects)
+    # with the address of a running scheduler, every partition goes to the cluster
     ready = json.loads((runs["dask_running"] / "manifest.json").read_text(encoding="utf-8"))
     ex = ready["execution"]
     assert ex["scheduler"] == running_cluster and ex["workers"] == 2
     assert ex["partitions_on_cluster"] >= sum(ready["counts"][k] for k in keys)
-    assert ex["partitions_in_client_while_starting"] < ex["partitions_on_cluster"] / 4
+    assert ex["partitions_in_client_while_starting"] == 0
     local = json.loads((runs["local"] / "manifest.json").read_text(encoding="utf-8"))
     assert local["execution"] == {"mode": "local", "workers": 1}
     # the mode is not part of any stage's key: a cached stage serves every mode
@@ -253,8 +253,9 @@ class _Done:
 
 
 def test_partitions_run_here_while_the_cluster_starts_then_on_the_cluster(monkeypatch):
-    """While the cluster starts, the client works through the items itself, in order; once it
-    is up, the rest go to the cluster; the results come back in item order either way."""
+    """While the cluster starts, the client works through the items itself, in order; the
+    moment it is up, every item not yet begun goes to it, while the client finishes the one
+    in hand; the results come back in item order either way."""
     import threading
 
     from pipeline.config import ExecutionConfig
@@ -268,26 +269,53 @@ def test_partitions_run_here_while_the_cluster_starts_then_on_the_cluster(monkey
         self._client = client
 
     monkeypatch.setattr(Executor, "_connect", connect)
-    here = []
+    monkeypatch.setattr("pipeline.execution._start_fork_server", lambda: False)
+    log = []
 
     def piece(item, *, scale):
-        here.append(item)
+        where = "cluster" if threading.current_thread().name == "altigrade-dask-handover" else ""
+        log.append(("begin", item, where))
         if item == 2:  # the cluster comes up while the third piece runs here
             up.set()
-            time.sleep(0.2)  # let the starting thread finish
+            time.sleep(0.5)
+        log.append(("end", item, where))
         return item * scale
 
     with Executor(ExecutionConfig(mode="dask", workers=2)) as ex:
         ex.warm_up()
         assert ex.map(piece, range(7), shared={"scale": 10}) == [0, 10, 20, 30, 40, 50, 60]
         assert client.items == [3, 4, 5, 6]  # the cluster got the rest, in order
-        assert here == [0, 1, 2, 3, 4, 5, 6]  # (the fake cluster runs in this process too)
+        # ... at once: before the piece in hand here had ended
+        assert log.index(("begin", 3, "cluster")) < log.index(("end", 2, ""))
+        assert [e[1] for e in log if e[0] == "begin" and not e[2]] == [0, 1, 2]
         # the cluster is up now: a later stage's pieces all go to it
         assert ex.map(piece, [7, 8], shared={"scale": 1}) == [7, 8]
         assert client.items[-2:] == [7, 8]
         described = ex.describe()
     assert described["partitions_in_client_while_starting"] == 3
     assert described["partitions_on_cluster"] == 6
+
+
+def test_items_all_done_here_before_the_cluster_is_up_send_nothing(monkeypatch):
+    import threading
+
+    from pipeline.config import ExecutionConfig
+    from pipeline.execution import Executor
+
+    up = threading.Event()
+    client = _FakeClient()
+
+    def connect(self):
+        assert up.wait(30)
+        self._client = client
+
+    monkeypatch.setattr(Executor, "_connect", connect)
+    monkeypatch.setattr("pipeline.execution._start_fork_server", lambda: False)
+    with Executor(ExecutionConfig(mode="dask", workers=2)) as ex:
+        ex.warm_up()
+        assert ex.map(lambda i: -i, range(5)) == [0, -1, -2, -3, -4]
+        up.set()
+    assert client.items == []
 
 
 def test_a_cluster_that_fails_to_start_still_fails_the_run(monkeypatch):
@@ -301,8 +329,62 @@ def test_a_cluster_that_fails_to_start_still_fails_the_run(monkeypatch):
         raise ConfigError("execution.scheduler: nothing answered")
 
     monkeypatch.setattr(Executor, "_connect", connect)
+    monkeypatch.setattr("pipeline.execution._start_fork_server", lambda: False)
     ex = Executor(ExecutionConfig(mode="dask", workers=2))
     ex.warm_up()
     with pytest.raises(ConfigError, match="nothing answered"):
         ex.map(lambda i: (time.sleep(0.05), i)[1], range(100))
     ex.close()
+
+
+_FORK_PROBE = """
+import json, os, sys
+from pipeline.config import ExecutionConfig
+from pipeline.execution import Executor
+
+def probe(_):
+    return {
+        "pid": os.getpid(),
+        "ppid": os.getppid(),
+        "loaded": sorted(m for m in ("pipeline.stages", "pipeline.report") if m in sys.modules),
+        "omp": os.environ.get("OMP_NUM_THREADS"),
+        "trim": os.environ.get("MALLOC_TRIM_THRESHOLD_"),
+        "seed": os.environ.get("PYTHONHASHSEED"),
+    }
+
+with Executor(ExecutionConfig(mode="dask", workers=1)) as ex:
+    ex.warm_up()
+    ex._wait_for_start()  # the cluster is up: the item goes to it
+    seen = ex.map(probe, [0])[0]
+    seen["on_cluster"] = ex.describe()["partitions_on_cluster"]
+seen["client"] = os.getpid()
+print(json.dumps(seen))
+"""
+
+
+def test_local_workers_are_forked_ready_from_a_fork_server():
+    """The workers of a local cluster are forked from a fork server that has the pipeline
+    (map and report code included) imported, with Dask's thread limits and hash seed but not
+    its malloc trim threshold (see pipeline.execution._worker_environ). In a fresh process:
+    the fork server is one per process."""
+    import os
+    import subprocess
+
+    env = {k: v for k, v in os.environ.items() if k not in ("MALLOC_TRIM_THRESHOLD_",)}
+    env.pop("PYTHONHASHSEED", None)
+    env.pop("OMP_NUM_THREADS", None)
+    proc = subprocess.run(
+        [sys.executable, "-c", _FORK_PROBE],
+        cwd=REPO,
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
+    assert proc.returncode == 0, proc.stderr
+    seen = json.loads(proc.stdout.strip().splitlines()[-1])
+    assert seen["on_cluster"] == 1
+    assert seen["pid"] != seen["client"]
+    assert seen["ppid"] != seen["client"]  # the fork server's child, not the client's
+    assert seen["loaded"] == ["pipeline.report", "pipeline.stages"]
+    assert seen["omp"] == "1" and seen["trim"] is None and seen["seed"] == "6640"
