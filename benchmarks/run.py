@@ -32,11 +32,13 @@ defer to local fuel regulations and licensed practice.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import datetime as dt
 import importlib.util
 import json
 import os
 import platform
+import resource
 import subprocess
 import sys
 import tempfile
@@ -84,13 +86,20 @@ def _log(msg: str) -> None:
 
 # ------------------------------------------------------------------------------ subprocesses
 def run_measured(
-    cmd: list[str], *, cwd: Path | None = None, env: dict | None = None, timeout: float = 3600
+    cmd: list[str],
+    *,
+    cwd: Path | None = None,
+    env: dict | None = None,
+    timeout: float = 3600,
+    orphan_wait_s: float = 30.0,
 ) -> dict:
     """Run ``cmd``; its wall time [s], CPU time [s], peak RSS [MB], exit code and the tail
     of its output.
 
-    CPU time is user + system time from ``wait4``: the child's and that of every descendant
-    it waited for (a Dask local cluster's worker processes included).
+    CPU time is user + system time of the child and of every process descended from it:
+    this process is made the children's subreaper, so a descendant that outlives its parent
+    (a Dask forkserver and the workers forked from it) comes back here, and is waited for
+    (up to ``orphan_wait_s``) and counted too.
 
     Peak RSS is the child's own ``VmHWM`` (``/proc/<pid>/status``), read every 20 ms while it
     runs; the last reading comes at most 20 ms before it exits. The ``ru_maxrss`` that
@@ -99,6 +108,9 @@ def run_measured(
     least this process's own size (2.1 GB after the corridor benchmark, measured).
     """
     full_env = {**os.environ, **(env or {})}
+    _become_subreaper()
+    _reap_orphans(0.0)  # any left from an earlier run are not this run's
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
     with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err:
         t = time.perf_counter()
         proc = subprocess.Popen(cmd, cwd=cwd, env=full_env, stdout=out, stderr=err)
@@ -109,23 +121,65 @@ def run_measured(
         watcher = threading.Thread(target=_watch_hwm, args=(proc.pid, peak_kb, done), daemon=True)
         watcher.start()
         try:
-            _, status, usage = os.wait4(proc.pid, 0)
+            _, status, _ = os.wait4(proc.pid, 0)
         finally:
             timer.cancel()
             done.set()
             watcher.join()
         wall = time.perf_counter() - t
         proc.returncode = os.waitstatus_to_exitcode(status)
+        left_running = _reap_orphans(orphan_wait_s)
+        usage = resource.getrusage(resource.RUSAGE_CHILDREN)
         out.seek(0)
         err.seek(0)
         return {
             "wall_s": wall,
-            "cpu_s": usage.ru_utime + usage.ru_stime,
+            "cpu_s": (usage.ru_utime - before.ru_utime) + (usage.ru_stime - before.ru_stime),
+            "descendants_still_running": left_running,
             "peak_rss_mb": peak_kb[0] / 1024.0 if peak_kb[0] else None,
             "returncode": proc.returncode,
             "stdout_tail": out.read().decode(errors="replace")[-3000:],
             "stderr_tail": err.read().decode(errors="replace")[-3000:],
         }
+
+
+#: prctl option number of PR_SET_CHILD_SUBREAPER (linux/prctl.h).
+_PR_SET_CHILD_SUBREAPER = 36
+
+
+def _become_subreaper() -> None:
+    """Have orphaned descendants of this process's children reparented to this process
+    (Linux ``prctl(PR_SET_CHILD_SUBREAPER)``), so that their CPU time can be counted."""
+    import ctypes
+
+    libc = ctypes.CDLL(None, use_errno=True)
+    if libc.prctl(_PR_SET_CHILD_SUBREAPER, 1, 0, 0, 0) != 0:
+        raise OSError(ctypes.get_errno(), "prctl(PR_SET_CHILD_SUBREAPER) failed")
+
+
+def _reap_orphans(wait_s: float) -> int:
+    """Wait for this process's remaining children for up to ``wait_s`` seconds; how many are
+    still running after it."""
+    deadline = time.monotonic() + wait_s
+    while True:
+        try:
+            pid, _ = os.waitpid(-1, os.WNOHANG)
+        except ChildProcessError:
+            return 0
+        if pid:
+            continue
+        if time.monotonic() >= deadline:
+            return _children_count()
+        time.sleep(0.02)
+
+
+def _children_count() -> int:
+    """Number of this process's child processes (``/proc/<pid>/task/*/children``)."""
+    n = 0
+    for task in os.listdir("/proc/self/task"):
+        with contextlib.suppress(OSError), open(f"/proc/self/task/{task}/children") as f:
+            n += len(f.read().split())
+    return n
 
 
 def _watch_hwm(pid: int, peak_kb: list[int], done: threading.Event) -> None:
