@@ -27,6 +27,7 @@ __all__ = [
     "ZONE_COLORS",
     "audience_maps",
     "read_map_inputs",
+    "lonlat",
     "basemap_of",
     "busiest",
     "station_map_spec",
@@ -363,12 +364,15 @@ def public_texts(stations: gpd.GeoDataFrame, standard_aki: float = 87.0) -> gpd.
     elevation, what to do when driving down. No enforcement detail."""
     st = stations.copy()
     reg = st["regular_aki"].to_numpy(float)
+    others = [
+        (label, st[col].to_numpy(float))
+        for col, label in (("midgrade_aki", "mid-grade"), ("premium_aki", "premium"))
+        if col in st.columns
+    ]
     grades = []
-    for _, r in st.iterrows():
-        parts = [f"regular {r['regular_aki']:g} AKI"]
-        for col, label in (("midgrade_aki", "mid-grade"), ("premium_aki", "premium")):
-            if col in st.columns and np.isfinite(float(r.get(col, np.nan))):
-                parts.append(f"{label} {float(r[col]):g}")
+    for i in range(len(st)):
+        parts = [f"regular {reg[i]:g} AKI"]
+        parts += [f"{label} {aki[i]:g}" for label, aki in others if np.isfinite(aki[i])]
         grades.append(", ".join(parts))
     st["public_sold"] = grades
     share = (
@@ -418,10 +422,22 @@ def public_texts(stations: gpd.GeoDataFrame, standard_aki: float = 87.0) -> gpd.
     return st
 
 
+def lonlat(gdf: gpd.GeoDataFrame | None) -> gpd.GeoDataFrame | None:
+    """``gdf`` in EPSG:4326 (WGS 84 longitude/latitude), the CRS the HTML maps draw in:
+    reprojected once here, not again by each map that shows it (:func:`pipeline.webmap.
+    build_map_html` reprojects what is not in it yet, by the same transformation). None, an
+    empty frame, or one without a CRS (which the map builder rejects by name) is returned
+    as it is."""
+    if gdf is None or not len(gdf) or gdf.crs is None or gdf.crs.equals("EPSG:4326"):
+        return gdf
+    return gdf.to_crs("EPSG:4326")
+
+
 def read_map_inputs(cfg) -> dict[str, Any]:
     """What the maps draw besides the run's results, read from its inputs: ``roads`` (the
     busiest ``outputs.map_max_lines`` lines, or None), ``road_total`` (road rows in the
-    file), ``towns`` and ``fleet_zones`` (None where the config names no such file)."""
+    file), ``towns`` and ``fleet_zones`` (None where the config names no such file); the
+    layers already in the maps' CRS (:func:`lonlat`)."""
     from pipeline import io
 
     roads, road_total = (
@@ -438,10 +454,10 @@ def read_map_inputs(cfg) -> dict[str, Any]:
         else None
     )
     return {
-        "roads": roads,
+        "roads": lonlat(roads),
         "road_total": int(road_total),
-        "towns": towns,
-        "fleet_zones": fleet_zones,
+        "towns": lonlat(towns),
+        "fleet_zones": lonlat(fleet_zones),
     }
 
 
@@ -474,6 +490,7 @@ def audience_maps(
     corridors, corridor_total = busiest(
         corridors, budget, ("risk_l_aki_per_month", "flow_l_per_month")
     )
+    corridors, zones = lonlat(corridors), lonlat(zones)  # once for the maps that show them
     plans = up.get("plans", {})
     basemap = basemap_of(up.get("basemap", {}))
     note = f"Run date {ctx.today.isoformat()} · altigrade"
