@@ -509,36 +509,41 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
             layers[name] = plans[name]
     out = ctx.out_dir
     crs = ctx.config.outputs.crs
-    # Build every output first; only then replace the previous ones, so that an input found
-    # unusable while drawing (a missing roads file, say) leaves the folder as it was.
-    texts: dict[str, str] = {
-        "stations.csv": io.csv_text(pd.DataFrame(stations.drop(columns=stations.geometry.name)))
-    }
-    for name in (
-        "inspection_priorities",
-        "inspection_plan",
-        "inspection_unplanned",
-        "supply_plan",
-        "supply_totals",
-        "supply_grade_volumes",
-    ):
-        table = plans.get(name)
-        if table is None:
-            continue
-        frame = (
-            pd.DataFrame(table.drop(columns=table.geometry.name))
-            if isinstance(table, gpd.GeoDataFrame)
-            else table
-        )
-        texts[f"{name}.csv"] = io.csv_text(frame)
+
+    def table_texts() -> dict[str, str]:
+        texts = {
+            "stations.csv": io.csv_text(pd.DataFrame(stations.drop(columns=stations.geometry.name)))
+        }
+        for name in (
+            "inspection_priorities",
+            "inspection_plan",
+            "inspection_unplanned",
+            "supply_plan",
+            "supply_totals",
+            "supply_grade_volumes",
+        ):
+            table = plans.get(name)
+            if table is None:
+                continue
+            frame = (
+                pd.DataFrame(table.drop(columns=table.geometry.name))
+                if isinstance(table, gpd.GeoDataFrame)
+                else table
+            )
+            texts[f"{name}.csv"] = io.csv_text(frame)
+        return texts
+
     from pipeline.layer_writer import write_gpkg_layers_in_child
     from pipeline.maps import audience_maps
     from pipeline.report import build_report_html
     from pipeline.webmap import build_map_html
 
     gpkg = out / "altigrade.gpkg"
+    # Build every output first; only then replace the previous ones, so that an input found
+    # unusable while drawing (a missing roads file, say) leaves the folder as it was.
     # The GeoPackage is written to a temporary file and renamed over the previous one only
-    # once every document is drawn; where stages overlap it is written while they are drawn.
+    # once every document is drawn; where stages overlap it is written, and the tables are
+    # formatted, while they are drawn.
     with io.atomic_path(gpkg) as gpkg_tmp, ThreadPoolExecutor(1) as writer:
         t0 = time.perf_counter()
 
@@ -556,6 +561,7 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         # imports cost 1.2 s more CPU on the national subset, at the same wall time).
         in_child = overlap and ctx.executor.mode != "dask"
         written = writer.submit(write_layers, in_child) if overlap else None
+        tables = writer.submit(table_texts) if overlap else None
         # the documents are independent: render them as separate pieces
         docs = [
             (name, build_map_html, {"spec": spec})
@@ -564,6 +570,7 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         docs.append(("report.html", build_report_html, _report_kwargs(ctx, up, stations, rejected)))
         ctx.part_timings["publish/document_contents"] = time.perf_counter() - t0
         rendered = _map(ctx, _render, [(fn, kw) for _, fn, kw in docs], {})
+        texts = table_texts() if tables is None else tables.result()
         texts.update(zip([name for name, _, _ in docs], rendered, strict=True))
         ctx.part_timings["publish/documents"] = time.perf_counter() - t0
         geopackage_s = write_layers(False) if written is None else written.result()
