@@ -252,13 +252,12 @@ class _Done:
         pass
 
 
-def test_partitions_run_here_while_the_cluster_starts_then_on_the_cluster(monkeypatch):
-    """While the cluster starts, the client works through the items itself, in order; the
-    moment it is up, every item not yet begun goes to it, while the client finishes the one
-    in hand; the results come back in item order either way."""
+@pytest.fixture
+def held_cluster(monkeypatch):
+    """A local cluster that starts only when the test sets the returned event, and is then a
+    :class:`_FakeClient` (no fork server is started either)."""
     import threading
 
-    from pipeline.config import ExecutionConfig
     from pipeline.execution import Executor
 
     up = threading.Event()
@@ -270,6 +269,19 @@ def test_partitions_run_here_while_the_cluster_starts_then_on_the_cluster(monkey
 
     monkeypatch.setattr(Executor, "_connect", connect)
     monkeypatch.setattr("pipeline.execution._start_fork_server", lambda: False)
+    return up, client
+
+
+def test_partitions_run_here_while_the_cluster_starts_then_on_the_cluster(held_cluster):
+    """While the cluster starts, the client works through the items itself, in order; the
+    moment it is up, every item not yet begun goes to it, while the client finishes the one
+    in hand; the results come back in item order either way."""
+    import threading
+
+    from pipeline.config import ExecutionConfig
+    from pipeline.execution import Executor
+
+    up, client = held_cluster
     log = []
 
     def piece(item, *, scale):
@@ -296,21 +308,11 @@ def test_partitions_run_here_while_the_cluster_starts_then_on_the_cluster(monkey
     assert described["partitions_on_cluster"] == 6
 
 
-def test_items_all_done_here_before_the_cluster_is_up_send_nothing(monkeypatch):
-    import threading
-
+def test_items_all_done_here_before_the_cluster_is_up_send_nothing(held_cluster):
     from pipeline.config import ExecutionConfig
     from pipeline.execution import Executor
 
-    up = threading.Event()
-    client = _FakeClient()
-
-    def connect(self):
-        assert up.wait(30)
-        self._client = client
-
-    monkeypatch.setattr(Executor, "_connect", connect)
-    monkeypatch.setattr("pipeline.execution._start_fork_server", lambda: False)
+    up, client = held_cluster
     with Executor(ExecutionConfig(mode="dask", workers=2)) as ex:
         ex.warm_up()
         assert ex.map(lambda i: -i, range(5)) == [0, -1, -2, -3, -4]
