@@ -20,6 +20,7 @@ from pipeline.webmap import (
     MapLayer,
     MapSpec,
     RampStyle,
+    in_map_crs,
 )
 
 __all__ = [
@@ -27,7 +28,6 @@ __all__ = [
     "ZONE_COLORS",
     "audience_maps",
     "read_map_inputs",
-    "lonlat",
     "basemap_of",
     "busiest",
     "station_map_spec",
@@ -422,22 +422,12 @@ def public_texts(stations: gpd.GeoDataFrame, standard_aki: float = 87.0) -> gpd.
     return st
 
 
-def lonlat(gdf: gpd.GeoDataFrame | None) -> gpd.GeoDataFrame | None:
-    """``gdf`` in EPSG:4326 (WGS 84 longitude/latitude), the CRS the HTML maps draw in:
-    reprojected once here, not again by each map that shows it (:func:`pipeline.webmap.
-    build_map_html` reprojects what is not in it yet, by the same transformation). None, an
-    empty frame, or one without a CRS (which the map builder rejects by name) is returned
-    as it is."""
-    if gdf is None or not len(gdf) or gdf.crs is None or gdf.crs.equals("EPSG:4326"):
-        return gdf
-    return gdf.to_crs("EPSG:4326")
-
-
 def read_map_inputs(cfg) -> dict[str, Any]:
     """What the maps draw besides the run's results, read from its inputs: ``roads`` (the
     busiest ``outputs.map_max_lines`` lines, or None), ``road_total`` (road rows in the
     file), ``towns`` and ``fleet_zones`` (None where the config names no such file); the
-    layers already in the maps' CRS (:func:`lonlat`)."""
+    layers already in the maps' CRS (:func:`pipeline.webmap.in_map_crs`), so that each map
+    showing them does not reproject them again."""
     from pipeline import io
 
     roads, road_total = (
@@ -454,10 +444,10 @@ def read_map_inputs(cfg) -> dict[str, Any]:
         else None
     )
     return {
-        "roads": lonlat(roads),
+        "roads": in_map_crs(roads),
         "road_total": int(road_total),
-        "towns": lonlat(towns),
-        "fleet_zones": lonlat(fleet_zones),
+        "towns": in_map_crs(towns),
+        "fleet_zones": in_map_crs(fleet_zones),
     }
 
 
@@ -490,7 +480,7 @@ def audience_maps(
     corridors, corridor_total = busiest(
         corridors, budget, ("risk_l_aki_per_month", "flow_l_per_month")
     )
-    corridors, zones = lonlat(corridors), lonlat(zones)  # once for the maps that show them
+    corridors, zones = in_map_crs(corridors), in_map_crs(zones)  # once for every map
     plans = up.get("plans", {})
     basemap = basemap_of(up.get("basemap", {}))
     note = f"Run date {ctx.today.isoformat()} · altigrade"

@@ -67,6 +67,7 @@ __all__ = [
     "RampStyle",
     "build_map_html",
     "format_value",
+    "in_map_crs",
     "json_for_script",
 ]
 
@@ -872,14 +873,22 @@ def _validate_layer(layer: MapLayer, li: int) -> None:
         raise MapBuildError(f"{where}: style must be CategoryStyle, RampStyle or None")
 
 
+def in_map_crs(gdf: geopandas.GeoDataFrame | None) -> geopandas.GeoDataFrame | None:
+    """``gdf`` in EPSG:4326 (WGS 84 longitude/latitude), the CRS the maps draw in. A layer
+    shown on several maps can be put in it once, beforehand (:mod:`pipeline.maps` does);
+    :func:`build_map_html` reprojects here whatever is not in it yet. None, an empty frame,
+    or one without a CRS (which the builder rejects by name) is returned as it is."""
+    if gdf is None or not len(gdf) or gdf.crs is None or gdf.crs.equals("EPSG:4326"):
+        return gdf
+    return gdf.to_crs("EPSG:4326")
+
+
 def _prepare_layer(
     layer: MapLayer, li: int, plain_color: str
 ) -> tuple[dict[str, Any], dict[str, Any], tuple[float, float, float, float] | None]:
     """(layer data for the runtime, legend section, lon/lat bounds or None)."""
     _validate_layer(layer, li)
-    gdf = layer.gdf
-    if len(gdf) and not gdf.crs.equals("EPSG:4326"):
-        gdf = gdf.to_crs("EPSG:4326")
+    gdf = in_map_crs(layer.gdf)
     geoms = gdf.geometry.to_numpy()
     has_geom = ~(shapely.is_missing(geoms) | shapely.is_empty(geoms))
     n_missing = int((~has_geom).sum())
