@@ -321,9 +321,10 @@ class Executor:
                 memory_limit=self.config.worker_memory_limit or "auto",
             )
         self._client = Client(self._cluster, timeout=timeout)
-        # import the pipeline in every worker now (seconds each), not inside the first task;
-        # the map and report code too, which the last stage's documents need (folium,
-        # matplotlib: about two seconds more per worker, measured)
+        # import the pipeline in every worker now, not inside the first task; the map and
+        # report code too, which the last stage's documents need (folium, matplotlib). Workers
+        # forked from the fork server have all of it already; spawned ones and those of a
+        # cluster at execution.scheduler import it here (seconds each, measured)
         for module in _WORKER_MODULES:
             self._client.run(importlib.import_module, module)
 
@@ -450,9 +451,9 @@ def fewer_full_collections():
     scenario (``threads``, callbacks on ``gc.callbacks``): 15 full collections of 0.06–0.21 s,
     1.8 s in all, 8 of them while the road graph was built; with these thresholds for the
     whole run none. Used around the road graph only: held for a whole run, the national
-    subset's peak RSS rose from 0.93 to 1.05 GB and the whole national scenario's run peaked
-    at 13.6 GB (cyclic garbage waiting for a full collection, we infer); around the road graph
-    alone the national subset's peak is 0.94 GB.
+    subset's peak RSS rose from 0.93 to 1.05 GB; around the road graph alone it is 0.94 GB.
+    (The whole national run's 13.6 GB peak is the same either way: it comes with the corridor
+    partitions, not with the collector.)
     """
     old = gc.get_threshold()
     gc.set_threshold(*(max(a, b) for a, b in zip(old, ROAD_GRAPH_GC_THRESHOLDS, strict=True)))
