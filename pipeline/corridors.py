@@ -82,8 +82,8 @@ Tank range 480–640 km: /work/shared/DOMAIN.md §4 (from memory).
 from __future__ import annotations
 
 import time
-import warnings
 from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
@@ -458,22 +458,41 @@ def compute_corridors(
     # shares them across bins)
     k = len(elev_cols)
     elev = np.stack([_column(profiles, c, "profiles").astype(float)[ent_edge] for c in elev_cols])
-    rb = np.asarray(required_aki(elev, grade, sust), dtype=float)  # (bins, nnz), broadcasting
-    if rb.ndim == 0:
-        rb = np.full((k, nnz), float(rb))
-    if rb.shape != (k, nnz):
-        raise CorridorError(
-            f"required_aki returned shape {rb.shape}; expected ({k}, {nnz}), one value per "
-            "elevation bin and edge-direction"
+
+    def entry_requirement() -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """(requirement per entry and bin with −inf where none, NaN flags, mean, max)."""
+        rb = np.asarray(required_aki(elev, grade, sust), dtype=float)  # (bins, nnz)
+        if rb.ndim == 0:
+            rb = np.full((k, nnz), float(rb))
+        if rb.shape != (k, nnz):
+            raise CorridorError(
+                f"required_aki returned shape {rb.shape}; expected ({k}, {nnz}), one value per "
+                "elevation bin and edge-direction"
+            )
+        req = np.ascontiguousarray(rb.T)  # (nnz, bins)
+        # NaN requirement → no deficit: −inf makes max(req − tank, 0) zero without a test
+        req_clean = np.where(np.isfinite(req), req, -np.inf)
+        # NaN-skipping mean and max per entry, as np.nanmean / np.nanmax compute them, without
+        # their all-NaN warning (the warnings filters are process-wide: not from a thread)
+        has = ~np.isnan(req)
+        count = has.sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            req_mean = np.where(has, req, 0.0).sum(axis=1) / count
+        req_max = np.where(
+            count > 0, np.where(has, req, -np.inf).max(axis=1, initial=-np.inf), np.nan
         )
-    req = np.ascontiguousarray(rb.T)  # (nnz, bins)
-    req_nan = ~np.isfinite(req).all(axis=1)
-    # NaN requirement → no deficit: −inf makes max(req − tank, 0) zero without a test
-    req_clean = np.where(np.isfinite(req), req, -np.inf)
-    with np.errstate(invalid="ignore"), warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        req_mean = np.nanmean(req, axis=1) if nnz else np.zeros(0)
-        req_max = np.nanmax(req, axis=1) if nnz else np.zeros(0)
+        return req_clean, ~np.isfinite(req).all(axis=1), req_mean, req_max
+
+    # Where a partition may use two threads (threads mode), the requirement is solved on a
+    # thread of its own while the partitions grow their trees, which need only the lengths;
+    # a partition waits for it before it adds up deficits. Elsewhere it is solved first
+    # (a Dask worker gets it with the network).
+    beside = None
+    if getattr(executor, "threads_per_piece", 1) > 1:
+        beside = ThreadPoolExecutor(1, thread_name_prefix="altigrade-requirement")
+        requirement: Any = beside.submit(entry_requirement)
+    else:
+        requirement = entry_requirement()
     loc_default = params.refill_aki if params.refill_aki is not None else standard
     if local_aki is None:
         loc = np.full(nnz, loc_default)
@@ -545,7 +564,7 @@ def compute_corridors(
         node_xy=np.asarray(graph.node_xy, dtype=float),
         node_rank=_morton_rank(graph.node_xy),
         component=np.asarray(graph.component, dtype=np.int64),
-        req_clean=req_clean,
+        req_clean=requirement if beside is not None else requirement[0],
         local_aki=loc,
         d_node=d_node,
         d_weight=d_w,
@@ -566,10 +585,17 @@ def compute_corridors(
                 exclude=[excl.get(int(i)) for i in rows],
             )
         )
-    if executor is None:
-        results = [_corridor_partition(p, net=net) for p in parts]
-    else:
-        results = executor.map(_corridor_partition, parts, shared={"net": net})
+    try:
+        if executor is None:
+            results = [_corridor_partition(p, net=net) for p in parts]
+        else:
+            results = executor.map(_corridor_partition, parts, shared={"net": net})
+        if beside is not None:
+            requirement = requirement.result()
+        _, req_nan, req_mean, req_max = requirement
+    finally:
+        if beside is not None:
+            beside.shutdown(wait=True)
 
     # Combine in partition order (the same order in every execution mode).
     sent = np.zeros(ns)
@@ -707,7 +733,10 @@ class _Network:
     node_xy: np.ndarray
     node_rank: np.ndarray
     component: np.ndarray
-    req_clean: np.ndarray
+    #: Requirement per entry and elevation bin [AKI], −inf where none; or, while it is being
+    #: solved beside the trees, a future whose result begins with it (see
+    #: :meth:`requirement`).
+    req_clean: Any
     local_aki: np.ndarray
     d_node: np.ndarray
     d_weight: np.ndarray
@@ -718,6 +747,11 @@ class _Network:
     #: Threads a partition may grow its destination trees on (1: one after another); the
     #: results do not depend on it.
     tree_threads: int = 1
+
+    def requirement(self) -> np.ndarray:
+        """``req_clean``, waiting for it where it is still being solved beside the trees."""
+        r = self.req_clean
+        return r.result()[0] if isinstance(r, Future) else r
 
 
 @dataclass(frozen=True, eq=False)
@@ -847,8 +881,6 @@ def _each_chunk(fn: Callable[[Any], Any], items: list, threads: int) -> list:
     code is compiled and releases the interpreter lock)."""
     if threads <= 1 or len(items) <= 1:
         return [fn(it) for it in items]
-    from concurrent.futures import ThreadPoolExecutor
-
     with ThreadPoolExecutor(min(threads, len(items)), thread_name_prefix="altigrade-trees") as ex:
         return list(ex.map(fn, items))
 
@@ -951,7 +983,7 @@ def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, An
     cand_ok = cand[None, :] > part.aki[:, None]
     acc = np.zeros((len(_ACC_FIELDS), nnz))
     bits = np.zeros((nnz, max(1, -(-m // 64))), dtype=np.uint64)
-    req = np.ascontiguousarray(net.req_clean[ents])
+    req = np.ascontiguousarray(net.requirement()[ents])
     ent_len = net.length_m[ents]
 
     def add_trees(chunk: np.ndarray, c: int) -> tuple[np.ndarray, np.ndarray, dict]:
@@ -1031,7 +1063,7 @@ def _partition_by_source(part: _SourceBatch, net: _Network) -> dict[str, Any]:
     d_in = d_local >= 0
     d_xy = net.node_xy[net.d_node]
     ent_len = net.length_m[ents]
-    req_clean = net.req_clean[ents]
+    req_clean = net.requirement()[ents]
     loc = net.local_aki[ents]
     n_bins = req_clean.shape[1]
     cand = net.candidate_aki

@@ -36,9 +36,9 @@ from typing import Annotated, Any, Literal, NamedTuple
 
 import numpy as np
 import pandas as pd
+from numba import njit
 from numpy.typing import ArrayLike
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
-from numba import njit
 from scipy.special import ndtr, ndtri
 
 from pipeline import atmosphere as atm

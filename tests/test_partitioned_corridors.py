@@ -311,3 +311,53 @@ def test_town_trees_in_two_chunks_change_no_station_bit(case, monkeypatch):
     pd.testing.assert_frame_equal(two.stations, threads.stations, check_exact=True)
     pd.testing.assert_frame_equal(two.edges, threads.edges, check_exact=True)
     assert (one.stations["export_risk_l_aki_per_month"] > 0).sum() > 10
+
+
+def test_threads_mode_solves_the_requirement_beside_the_trees(case):
+    """In threads mode the requirement is solved on a thread of its own while the trees
+    grow (they need only the lengths): the first tree is grown before the requirement has
+    returned, and the sums are the bits of the run that solves it first."""
+    import threading
+
+    graph, prof, st, towns, params = case
+    kw = {"candidate_aki": np.array([86.0]), "sources_per_partition": 9}
+    ref = co.compute_corridors(graph, prof, st, towns, toy_requirement, params, **kw)
+    solved = threading.Event()
+    events = []
+
+    def slow_requirement(elev, grade, climb):
+        events.append(("requirement on", threading.current_thread().name))
+        solved.wait(5.0)  # held until a tree has been grown (or 5 s)
+        return toy_requirement(elev, grade, climb)
+
+    real = co.bounded_tree
+
+    def watched(*a, **k):
+        if not solved.is_set():
+            events.append(("tree before requirement", None))
+            solved.set()
+        return real(*a, **k)
+
+    mp = pytest.MonkeyPatch()
+    mp.setattr(co, "bounded_tree", watched)
+    try:
+        with make_executor(ExecutionConfig(mode="threads", workers=2)) as ex:
+            got = co.compute_corridors(
+                graph, prof, st, towns, slow_requirement, params, executor=ex, **kw
+            )
+    finally:
+        mp.undo()
+    assert events[0][1].startswith("altigrade-requirement")
+    assert ("tree before requirement", None) in events
+    pd.testing.assert_frame_equal(ref.stations, got.stations, check_exact=True)
+    pd.testing.assert_frame_equal(ref.edges, got.edges, check_exact=True)
+
+
+@pytest.mark.parametrize("mode", ["local", "threads"])
+def test_a_requirement_of_the_wrong_shape_is_refused_in_every_mode(case, mode):
+    graph, prof, st, towns, params = case
+    with make_executor(ExecutionConfig(mode=mode, workers=2)) as ex:
+        with pytest.raises(co.CorridorError, match="required_aki returned shape"):
+            co.compute_corridors(
+                graph, prof, st, towns, lambda e, g, c: np.zeros(3), params, executor=ex
+            )
