@@ -67,8 +67,6 @@ class Executor:
         self._start_error: BaseException | None = None
         self._lock = threading.Lock()
         self._forked = False  # workers of the local cluster forked from a ready fork server
-        #: threads mode: a fork server is up with the GeoPackage writer imported
-        self.fork_server = False
         self._pieces = {"in_client": 0, "on_cluster": 0}
 
     def warm_up(self) -> None:
@@ -78,10 +76,6 @@ class Executor:
         (:func:`share_one_malloc_arena`)."""
         if self.overlaps_stages:
             share_one_malloc_arena()
-        if self.mode == "threads" and self.overlaps_stages and not self.fork_server:
-            # the last stage's GeoPackage writer is forked from it, ready to write; its
-            # imports run now, while the first stages hold the interpreter lock in turns
-            self.fork_server = _start_fork_server(preload=_WRITER_MODULES)
         if self.mode != "dask" or self._client is not None or self._starting is not None:
             return
         if not self.config.scheduler:  # first, so that it starts before the stages' threads
@@ -352,33 +346,31 @@ def _worker_environ() -> dict[str, Any]:
     }
 
 
-def _start_fork_server(preload: Sequence[str] | None = None) -> bool:
+def _start_fork_server() -> bool:
     """Start Python's fork server (``multiprocessing`` start method ``forkserver``) now, with
-    modules imported in it, so that each process forked from it is ready to work, instead of
-    being a fresh interpreter that imports them again (about two seconds of CPU per Dask
-    worker, measured). Returns False where the platform has no fork server (Dask's workers
-    are then spawned, its default; the GeoPackage writer is a fresh interpreter).
+    the pipeline, Dask's worker and the map and report code imported in it, so that each
+    worker of a local cluster is forked from it ready to work, instead of being a fresh
+    interpreter that imports all of that again (about two seconds of CPU per worker,
+    measured). Returns False where the platform has no fork server (the workers are then
+    spawned, Dask's default).
 
-    By default (for a local Dask cluster) the modules are the pipeline, Dask's worker and the
-    map and report code, and the server's environment is the one each worker would be
-    spawned with: :func:`_worker_environ` (values already in this process's environment
-    kept) and the fixed hash seed the Dask nanny sets, so that all workers hash alike. Both
-    are also set in this process's environment, as the nanny itself does before it starts a
-    worker. With ``preload`` given, those modules and the environment as it is. A server
-    already running (an earlier run in the same process) is kept as it is.
+    The server's environment is the one each worker would be spawned with:
+    :func:`_worker_environ` (values already in this process's environment kept) and the
+    fixed hash seed the Dask nanny sets, so that all workers hash alike. Both are also set in
+    this process's environment, as the nanny itself does before it starts a worker.
     """
     import multiprocessing
     from multiprocessing import forkserver
 
     if "forkserver" not in multiprocessing.get_all_start_methods():
         return False
-    if preload is None:
-        env = {k: os.environ.get(k, str(v)) for k, v in _worker_environ().items() if v is not None}
-        if env.get("PYTHONHASHSEED") in (None, "0"):
-            env["PYTHONHASHSEED"] = _DASK_HASH_SEED
-        os.environ.update(env)
-        preload = ["distributed", "distributed.nanny", *_WORKER_MODULES]
-    multiprocessing.get_context("forkserver").set_forkserver_preload(list(preload))
+    env = {k: os.environ.get(k, str(v)) for k, v in _worker_environ().items() if v is not None}
+    if env.get("PYTHONHASHSEED") in (None, "0"):
+        env["PYTHONHASHSEED"] = _DASK_HASH_SEED
+    os.environ.update(env)
+    multiprocessing.get_context("forkserver").set_forkserver_preload(
+        ["distributed", "distributed.nanny", *_WORKER_MODULES]
+    )
     forkserver.ensure_running()
     return True
 
@@ -418,9 +410,6 @@ class _Claims:
 
 #: Modules every worker of a local cluster imports when it starts.
 _WORKER_MODULES = ("pipeline.stages", "pipeline.maps", "pipeline.webmap", "pipeline.report")
-
-#: What the fork server of a ``threads`` run imports: the GeoPackage writer's process.
-_WRITER_MODULES = ("pipeline.io", "pipeline.layer_writer")
 
 #: mallopt parameter number of glibc's M_ARENA_MAX (malloc.h).
 _M_ARENA_MAX = -8

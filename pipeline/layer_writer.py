@@ -40,14 +40,9 @@ _PR_SET_PDEATHSIG = 1
 
 
 def write_gpkg_layers_in_child(
-    path: Path, layers: dict[str, gpd.GeoDataFrame], crs, *, final: Path, forked: bool = False
+    path: Path, layers: dict[str, gpd.GeoDataFrame], crs, *, final: Path
 ) -> bool:
     """:func:`pipeline.io.write_gpkg_layers_into` with the writing done by a child process.
-
-    With ``forked`` the child is forked from the run's fork server (started by
-    :meth:`pipeline.execution.Executor.warm_up`, with this module imported): it starts
-    ready to write, without a fresh interpreter's second of imports. Otherwise it is a new
-    interpreter (``python -m pipeline.layer_writer``).
 
     Returns True when the child wrote the layers, False when they were written in this
     process (a layer Arrow cannot hold).
@@ -82,9 +77,6 @@ def write_gpkg_layers_in_child(
             ),
             encoding="utf-8",
         )
-        if forked:
-            _run_forked(job)
-            return True
         env = dict(os.environ)
         root = str(Path(__file__).resolve().parent.parent)
         env["PYTHONPATH"] = os.pathsep.join(p for p in (root, env.get("PYTHONPATH")) if p)
@@ -103,32 +95,6 @@ def write_gpkg_layers_in_child(
     return True
 
 
-def _run_forked(job: Path) -> None:
-    """:func:`main` on ``job`` in a process forked from the fork server; an
-    :class:`OutputError` there is raised here."""
-    import multiprocessing
-    from concurrent.futures import ProcessPoolExecutor
-
-    with ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("forkserver")) as pool:
-        pool.submit(_write_job, str(job)).result()
-
-
-def _write_job(job_path: str) -> None:
-    """The forked child's work: the layers of the job file (its parent is the fork server,
-    which ends with the run: the child then gets SIGKILL, as the interpreter child does)."""
-    job = json.loads(Path(job_path).read_text(encoding="utf-8"))
-    _die_with_parent(os.getppid())
-    _write_layers(job)
-
-
-def _write_layers(job: dict) -> None:
-    from pipeline import io
-
-    final = Path(job["final"])
-    for name, f in job["layers"].items():
-        io.write_gpkg_layer(Path(job["path"]), name, gpd.read_feather(f), final=final)
-
-
 def _die_with_parent(parent: int) -> bool:
     """Ask Linux to kill this process when its parent ends; False if the parent already has."""
     if sys.platform.startswith("linux"):
@@ -144,8 +110,12 @@ def main(argv: list[str] | None = None) -> int:
     job = json.loads(Path(args[0]).read_text(encoding="utf-8"))
     if not _die_with_parent(int(job["parent"])):
         return 1
+    from pipeline import io
+
+    final = Path(job["final"])
     try:
-        _write_layers(job)
+        for name, f in job["layers"].items():
+            io.write_gpkg_layer(Path(job["path"]), name, gpd.read_feather(f), final=final)
     except OutputError as exc:
         print(str(exc), file=sys.stderr)
         return 2

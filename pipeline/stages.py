@@ -550,8 +550,7 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         def write_layers(in_child: bool) -> float:
             start = time.perf_counter()
             if in_child:  # GDAL's writer holds the interpreter lock: not beside the drawing
-                forked = getattr(ctx.executor, "fork_server", False)
-                write_gpkg_layers_in_child(gpkg_tmp, layers, crs, final=gpkg, forked=forked)
+                write_gpkg_layers_in_child(gpkg_tmp, layers, crs, final=gpkg)
             else:
                 io.write_gpkg_layers_into(gpkg_tmp, layers, crs, final=gpkg)
             return time.perf_counter() - start

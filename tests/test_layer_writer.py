@@ -74,24 +74,11 @@ def varied_layers() -> dict[str, gpd.GeoDataFrame]:
     return {"stations": pts, "corridors": lines, "nothing": empty}
 
 
-@pytest.fixture(params=[False, True], ids=["interpreter", "forked"])
-def forked(request):
-    """The child as a fresh interpreter, or forked from a fork server with the writer
-    imported (as a ``threads`` run starts it)."""
-    if request.param:
-        from pipeline import execution
-
-        if not execution._start_fork_server(preload=execution._WRITER_MODULES):
-            pytest.skip("no fork server on this platform")
-    return request.param
-
-
-def test_the_child_writes_the_same_geopackage_as_the_run_process(tmp_path, forked):
+def test_the_child_writes_the_same_geopackage_as_the_run_process(tmp_path):
     layers = varied_layers()
     here, child = tmp_path / "here.gpkg", tmp_path / "child.gpkg"
     io.write_gpkg_layers_into(here, layers, "EPSG:4326", final=tmp_path / "out.gpkg")
-    out = tmp_path / "out.gpkg"
-    assert write_gpkg_layers_in_child(child, layers, "EPSG:4326", final=out, forked=forked)
+    assert write_gpkg_layers_in_child(child, layers, "EPSG:4326", final=tmp_path / "out.gpkg")
     assert sqlite_rows(child) == sqlite_rows(here)
     for name in layers:
         a = pyogrio.read_dataframe(here, layer=name)
@@ -112,15 +99,11 @@ def test_a_column_arrow_cannot_hold_is_written_in_this_process(tmp_path):
     assert sqlite_rows(child) == sqlite_rows(here)
 
 
-def test_a_file_the_child_cannot_write_raises_an_output_error_naming_the_output(tmp_path, forked):
+def test_a_file_the_child_cannot_write_raises_an_output_error_naming_the_output(tmp_path):
     final = tmp_path / "outputs" / "altigrade.gpkg"
     with pytest.raises(OutputError) as err:
         write_gpkg_layers_in_child(
-            tmp_path / "no-such-folder" / "x.gpkg",
-            varied_layers(),
-            "EPSG:4326",
-            final=final,
-            forked=forked,
+            tmp_path / "no-such-folder" / "x.gpkg", varied_layers(), "EPSG:4326", final=final
         )
     assert str(final) in str(err.value) and "cannot write layer" in str(err.value)
     assert "Traceback" not in str(err.value)
@@ -188,46 +171,3 @@ def _alive(pid: int) -> bool:
             return f.read().rsplit(")", 1)[1].split()[0] != "Z"
     except FileNotFoundError:
         return False
-
-
-_THREADS_PROBE = """
-import json, os, sys
-from concurrent.futures import ProcessPoolExecutor
-import multiprocessing
-from pipeline.config import ExecutionConfig
-from pipeline.execution import Executor
-
-def probe(_):
-    return {"ppid": os.getppid(), "io": "pipeline.io" in sys.modules,
-            "writer": "pipeline.layer_writer" in sys.modules,
-            "dask": "distributed" in sys.modules, "seed": os.environ.get("PYTHONHASHSEED")}
-
-if __name__ == "__main__":
-    with Executor(ExecutionConfig(mode="threads", workers=2)) as ex:
-        ex.warm_up()
-        seen = {"fork_server": ex.fork_server, "client": os.getpid()}
-        ctx = multiprocessing.get_context("forkserver")
-        with ProcessPoolExecutor(1, mp_context=ctx) as pool:
-            seen.update(pool.submit(probe, 0).result())
-    print(json.dumps(seen))
-"""
-
-
-@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="the fork server is POSIX's")
-def test_a_threads_run_starts_a_fork_server_with_the_writer_imported(tmp_path):
-    """In a fresh interpreter (the fork server is one per process): ``threads`` mode starts
-    the fork server on warm-up, with the writer imported and without Dask or Dask's
-    environment, and its children are not the run process's own."""
-    script = tmp_path / "probe.py"
-    script.write_text(_THREADS_PROBE, encoding="utf-8")
-    env = {k: v for k, v in os.environ.items() if k != "PYTHONHASHSEED"}
-    env["PYTHONPATH"] = str(REPO)
-    proc = subprocess.run(
-        [sys.executable, str(script)], env=env, capture_output=True, text=True, timeout=300
-    )
-    assert proc.returncode == 0, proc.stderr
-    seen = json.loads(proc.stdout.strip().splitlines()[-1])
-    assert seen["fork_server"] is True
-    assert seen["ppid"] != seen["client"]
-    assert seen["io"] and seen["writer"]
-    assert not seen["dask"] and seen["seed"] is None
