@@ -161,6 +161,31 @@ class Executor:
     def __exit__(self, *exc) -> None:
         self.close()
 
+    @property
+    def forks_pieces(self) -> bool:
+        """Whether :meth:`start_in_forks` forks: in ``threads`` mode with stages overlapping,
+        where the platform can fork."""
+        import multiprocessing
+
+        return (
+            self.mode == "threads"
+            and self.overlaps_stages
+            and "fork" in multiprocessing.get_all_start_methods()
+        )
+
+    def start_in_forks(self, jobs: Sequence[Callable[[], Any]]) -> _Forks:
+        """Start ``job()`` for each job in a child forked from this process now (one child
+        per job), for pieces that hold the interpreter lock for most of their time (drawing
+        the documents: templates, JSON, charts), so that they run side by side with each
+        other and with this process. A child has this process's memory as it is at the call,
+        so nothing is pickled on the way in; only the result comes back (by pipe).
+
+        Call it while no other thread of this process is at work (a lock another thread
+        holds at the fork stays held in the child): the last stage calls it first thing,
+        before it starts its writer thread. Only where :attr:`forks_pieces` is true.
+        """
+        return _Forks(jobs)
+
     def describe(self) -> dict[str, Any]:
         """Mode, workers and scheduler, for the run manifest; in ``dask`` mode also how many
         partitions ran on the cluster and how many in this process while it started."""
@@ -378,6 +403,97 @@ def _start_fork_server() -> bool:
 #: The hash seed the Dask nanny gives its workers (``distributed.nanny.Nanny``), so that all
 #: of them hash alike.
 _DASK_HASH_SEED = "6640"
+
+
+class _Forks:
+    """Children forked from this process, one per job (:meth:`Executor.start_in_forks`)."""
+
+    def __init__(self, jobs: Sequence[Callable[[], Any]]):
+        import multiprocessing
+        import warnings
+
+        ctx = multiprocessing.get_context("fork")
+        self._children = []
+        # the objects alive now are left out of the children's garbage collections, which
+        # would otherwise write to every one of them and so copy the whole heap page by page
+        gc.freeze()
+        try:
+            for job in jobs:
+                receive, send = ctx.Pipe(duplex=False)
+                child = ctx.Process(target=_forked_job, args=(job, send, os.getpid()), daemon=True)
+                with warnings.catch_warnings():
+                    # Python 3.12+ warns on every fork of a process with threads; the
+                    # caller forks while they are idle (see Executor.start_in_forks)
+                    warnings.filterwarnings("ignore", "This process .* is multi-threaded")
+                    child.start()
+                send.close()
+                self._children.append((child, receive))
+        except BaseException:
+            self.close()
+            raise
+        finally:
+            gc.unfreeze()
+
+    def results(self) -> list[Any]:
+        """Each job's result, in job order; the first failed job's error is raised (after
+        every child has ended)."""
+        out: list[Any] = []
+        error: BaseException | None = None
+        for child, receive in self._children:
+            try:
+                kind, value = receive.recv()
+            except EOFError:
+                child.join()
+                kind, value = (
+                    "error",
+                    RuntimeError(
+                        f"a forked process ended without its result (exit code {child.exitcode})"
+                    ),
+                )
+            finally:
+                receive.close()
+            child.join()
+            if kind == "error" and error is None:
+                error = value
+            out.append(value)
+        self._children = []
+        if error is not None:
+            raise error
+        return out
+
+    def close(self) -> None:
+        """End every child still running (the run stops on an error elsewhere)."""
+        for child, receive in self._children:
+            receive.close()
+            if child.is_alive():
+                child.kill()
+            child.join()
+        self._children = []
+
+
+def _forked_job(job: Callable[[], Any], send: Any, parent: int) -> None:
+    """A forked child's work: ``job()``, its result or error sent back by ``send``. The child
+    dies with the run's process (``PR_SET_PDEATHSIG`` on Linux)."""
+    import traceback
+
+    from pipeline.errors import AltigradeError
+    from pipeline.layer_writer import _die_with_parent
+
+    if not _die_with_parent(parent):
+        return
+    try:
+        result: tuple[str, Any] = ("ok", job())
+    except BaseException as exc:  # an error the run reports: sent back, raised by the run
+        if isinstance(exc, AltigradeError):
+            result = ("error", exc)
+        else:
+            result = ("error", RuntimeError("".join(traceback.format_exception(exc)).strip()))
+    try:
+        send.send(result)
+    except Exception as exc:  # a result or an error that cannot be pickled
+        send.send(("error", RuntimeError(f"a forked process could not send its result: {exc}")))
+    finally:
+        send.close()
 
 
 class _Claims:

@@ -8,6 +8,7 @@ ordering, reuse of unchanged stages and the manifest. Calculation lives in the p
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import json
 import time
 from collections.abc import Callable
@@ -546,6 +547,20 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
     # formatted, while they are drawn.
     with io.atomic_path(gpkg) as gpkg_tmp, ThreadPoolExecutor(1) as writer:
         t0 = time.perf_counter()
+        forks = None
+        if ctx.executor is not None and ctx.executor.forks_pieces:
+            # threads mode: the documents are drawn by children forked now, before this
+            # stage starts its writer thread (no other stage runs beside the last one), one
+            # per document; the maps' contents are made here once and inherited, the
+            # report's in its child
+            specs = audience_maps(ctx, up, stations, zones, rejected)
+            names = [*specs, "report.html"]
+            jobs: list[Callable[[], str]] = [
+                functools.partial(build_map_html, spec=spec) for spec in specs.values()
+            ]
+            jobs.append(lambda: build_report_html(**_report_kwargs(ctx, up, stations, rejected)))
+            ctx.part_timings["publish/document_contents"] = time.perf_counter() - t0
+            forks = ctx.executor.start_in_forks(jobs)
 
         def write_layers(in_child: bool) -> float:
             start = time.perf_counter()
@@ -556,22 +571,31 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
             return time.perf_counter() - start
 
         overlap = ctx.executor is not None and ctx.executor.overlaps_stages
-        # In dask mode the documents are drawn on the cluster and this process has the
-        # GeoPackage to write meanwhile: it writes it itself (a child's interpreter and
-        # imports cost 1.2 s more CPU on the national subset, at the same wall time).
-        in_child = overlap and ctx.executor.mode != "dask"
+        # Where the documents are drawn elsewhere (on the cluster in dask mode, by forked
+        # children in threads mode) this process has the GeoPackage to write meanwhile: it
+        # writes it itself (a child's interpreter and imports cost 1.2 s more CPU on the
+        # national subset in dask mode, at the same wall time).
+        in_child = overlap and ctx.executor.mode != "dask" and forks is None
         written = writer.submit(write_layers, in_child) if overlap else None
         tables = writer.submit(table_texts) if overlap else None
-        # the documents are independent: render them as separate pieces
-        docs = [
-            (name, build_map_html, {"spec": spec})
-            for name, spec in audience_maps(ctx, up, stations, zones, rejected).items()
-        ]
-        docs.append(("report.html", build_report_html, _report_kwargs(ctx, up, stations, rejected)))
-        ctx.part_timings["publish/document_contents"] = time.perf_counter() - t0
-        rendered = _map(ctx, _render, [(fn, kw) for _, fn, kw in docs], {})
+        if forks is None:
+            # the documents are independent: render them as separate pieces
+            docs = [
+                (name, build_map_html, {"spec": spec})
+                for name, spec in audience_maps(ctx, up, stations, zones, rejected).items()
+            ]
+            kwargs = _report_kwargs(ctx, up, stations, rejected)
+            docs.append(("report.html", build_report_html, kwargs))
+            ctx.part_timings["publish/document_contents"] = time.perf_counter() - t0
+            names = [name for name, _, _ in docs]
+            rendered = _map(ctx, _render, [(fn, kw) for _, fn, kw in docs], {})
+        else:
+            try:
+                rendered = forks.results()
+            finally:
+                forks.close()
         texts = table_texts() if tables is None else tables.result()
-        texts.update(zip([name for name, _, _ in docs], rendered, strict=True))
+        texts.update(zip(names, rendered, strict=True))
         ctx.part_timings["publish/documents"] = time.perf_counter() - t0
         geopackage_s = write_layers(False) if written is None else written.result()
         ctx.part_timings["publish/geopackage"] = geopackage_s

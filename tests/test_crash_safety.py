@@ -610,16 +610,16 @@ def test_failure_while_drawing_leaves_the_previous_outputs(tmp_path, monkeypatch
     run(load_config(cfg), out)
     before = {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()}
     (tmp_path / "stations.csv").write_text(csv_text(GOOD[:2]), encoding="utf-8")
-    drawn = []
+    drawn = tmp_path / "drawn"  # a file: in threads mode the report is drawn in a forked child
 
     def broken(**kwargs):
-        drawn.append(True)
+        drawn.write_text("tried", encoding="utf-8")
         raise OutputError("report: cannot draw")
 
     monkeypatch.setattr(pipeline.report, "build_report_html", broken)
     with pytest.raises(OutputError, match="cannot draw"):
         run(load_config(cfg), out)
-    assert drawn
+    assert drawn.exists()
     after = {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()}
     assert after == before
     assert not list(out.rglob(".tmp-*"))
