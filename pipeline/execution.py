@@ -481,6 +481,16 @@ def _forked_job(job: Callable[[], Any], send: Any, parent: int) -> None:
 
     if not _die_with_parent(parent):
         return
+    # fresh stdout and stderr objects on the same files: the inherited ones may have been
+    # locked by another thread at the fork (a progress display writing, say), and a lock
+    # held at the fork stays held in the child
+    for name, fd in (("stdout", 1), ("stderr", 2)):
+        old = getattr(sys, name)
+        encoding = getattr(old, "encoding", None) or "utf-8"
+        errors = getattr(old, "errors", None) or "backslashreplace"
+        with contextlib.suppress(OSError, ValueError):
+            fresh = open(os.dup(fd), "w", buffering=1, encoding=encoding, errors=errors)  # noqa: SIM115
+            setattr(sys, name, fresh)
     try:
         result: tuple[str, Any] = ("ok", job())
     except BaseException as exc:  # an error the run reports: sent back, raised by the run

@@ -71,3 +71,15 @@ def test_only_threads_mode_forks():
             assert not ex.forks_pieces
     with make_executor(ExecutionConfig(mode="threads", workers=1)) as ex:
         assert not ex.forks_pieces  # one thread asked for: one thing at a time
+
+
+def test_a_child_writes_through_fresh_standard_streams_on_the_same_files(threads, capfd):
+    """A lock another thread held on the inherited sys.stderr at the fork would stay held in
+    the child: the child writes through new stream objects on file descriptors 1 and 2."""
+
+    def job():
+        print("from the child", file=sys.stderr)
+        return sys.stderr is not sys.__stderr__ and sys.stdout is not sys.__stdout__
+
+    assert threads.start_in_forks([job]).results() == [True]
+    assert "from the child" in capfd.readouterr().err
