@@ -164,14 +164,9 @@ class Executor:
     @property
     def forks_pieces(self) -> bool:
         """Whether :meth:`start_in_forks` forks: in ``threads`` mode with stages overlapping,
-        where the platform can fork."""
-        import multiprocessing
-
-        return (
-            self.mode == "threads"
-            and self.overlaps_stages
-            and "fork" in multiprocessing.get_all_start_methods()
-        )
+        on Linux (macOS can fork, but its system frameworks are not safe in a forked child,
+        which is why Python spawns there by default)."""
+        return self.mode == "threads" and self.overlaps_stages and sys.platform.startswith("linux")
 
     def start_in_forks(self, jobs: Sequence[Callable[[], Any]]) -> _Forks:
         """Start ``job()`` for each job in a child forked from this process now (one child

@@ -83,3 +83,53 @@ def test_a_child_writes_through_fresh_standard_streams_on_the_same_files(threads
 
     assert threads.start_in_forks([job]).results() == [True]
     assert "from the child" in capfd.readouterr().err
+
+
+def test_without_forks_the_documents_are_drawn_on_threads_and_the_outputs_are_the_same(
+    small_demo_inputs, tmp_path, monkeypatch
+):
+    """Where the platform cannot fork (threads mode off Linux) the documents are drawn on
+    the run's threads and a child interpreter writes the GeoPackage: the outputs equal those
+    of the forked documents and of the single-process run (every table byte for byte, every
+    GeoPackage layer by content hash, the three maps byte for byte)."""
+    from conftest import REPO
+    from test_determinism import layer_hashes
+
+    from pipeline import execution, layer_writer
+    from pipeline.config import load_config
+    from pipeline.stages import run
+
+    def config(name: str, execution_toml: str):
+        text = (REPO / "config" / "demo.toml").read_text(encoding="utf-8")
+        text = text.replace("{demo}", small_demo_inputs.as_posix())
+        text = text.replace('"rules/', f'"{(REPO / "config" / "rules").as_posix()}/')
+        path = tmp_path / f"{name}.toml"
+        path.write_text(text + f"\n[execution]\n{execution_toml}", encoding="utf-8")
+        return load_config(path)
+
+    outs = {}
+    for name, toml in (
+        ("local", 'mode = "local"\n'),
+        ("forked", 'mode = "threads"\nworkers = 2\n'),
+    ):
+        outs[name] = tmp_path / name
+        run(config(name, toml), outs[name])
+    children = []
+    real = layer_writer.write_gpkg_layers_in_child
+    monkeypatch.setattr(
+        layer_writer,
+        "write_gpkg_layers_in_child",
+        lambda *a, **k: children.append(1) or real(*a, **k),
+    )
+    monkeypatch.setattr(execution.Executor, "forks_pieces", property(lambda self: False))
+    outs["threads"] = tmp_path / "threads"
+    run(config("threads", 'mode = "threads"\nworkers = 2\n'), outs["threads"])
+    assert children  # the child interpreter wrote the GeoPackage
+    ref = outs["local"]
+    for name in ("forked", "threads"):
+        got = outs[name]
+        assert layer_hashes(got / "altigrade.gpkg") == layer_hashes(ref / "altigrade.gpkg")
+        for f in sorted(p.name for p in ref.glob("*.csv")):
+            assert (got / f).read_bytes() == (ref / f).read_bytes(), (name, f)
+        for f in ("map.html", "map_distributor.html", "map_public.html"):
+            assert (got / f).read_bytes() == (ref / f).read_bytes(), (name, f)
