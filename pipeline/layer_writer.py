@@ -1,17 +1,17 @@
 """Write the GeoPackage's layers in a process of its own, beside the documents being drawn.
 
 Where stages overlap ``publish`` writes the GeoPackage while the maps and report are drawn.
-Where they are drawn on the run's own threads (``threads`` mode where the platform cannot
-fork; elsewhere they are drawn in forked children or on the cluster, and the run's process
-writes the GeoPackage itself) it is written here. GDAL's writers, feature by feature or in
-Arrow batches, hold the interpreter lock for most of their time (measured: a pure-Python
-loop run beside the state scenario's corridor layer being written waited as long as the
-write), so on a thread they only take turns with the documents. Here the layers, already in
-the output CRS, are handed to a child interpreter as Arrow IPC files
-(``GeoDataFrame.to_feather``: columns and geometries as they are, WKB geometries, the CRS as
-PROJJSON); the child reads them back and writes them with
-:func:`pipeline.io.write_gpkg_layer`, the same call the run's own process makes in ``local``
-mode, so the GeoPackage is the same (checked by the tests that compare the modes' outputs).
+Where they are drawn on the run's own threads (``threads`` mode off Linux; elsewhere they
+are drawn in forked children or on the cluster, and the run's process writes the GeoPackage
+itself) it is written here. GDAL's writers, feature by feature or in Arrow batches, hold the
+interpreter lock for most of their time (measured: a pure-Python loop run beside the state
+scenario's corridor layer being written waited as long as the write), so on a thread they
+only take turns with the documents. Here the layers, already in the output CRS, are handed
+to a child interpreter as Arrow IPC files (``GeoDataFrame.to_feather``: columns and
+geometries as they are, WKB geometries, the CRS as PROJJSON); the child reads them back and
+writes them with :func:`pipeline.io.write_gpkg_layer`, the same call the run's own process
+makes in ``local`` mode, so the GeoPackage is the same (checked by the tests that compare the
+modes' outputs).
 
 A layer set Arrow cannot hold (a column of mixed Python objects, say) is written in this
 process instead. The child dies with the run's process (``PR_SET_PDEATHSIG`` on Linux): a

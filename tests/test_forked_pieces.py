@@ -88,7 +88,7 @@ def test_a_child_writes_through_fresh_standard_streams_on_the_same_files(threads
 def test_without_forks_the_documents_are_drawn_on_threads_and_the_outputs_are_the_same(
     small_demo_inputs, tmp_path, monkeypatch
 ):
-    """Where the platform cannot fork (threads mode off Linux) the documents are drawn on
+    """Off Linux (threads mode there does not fork) the documents are drawn on
     the run's threads and a child interpreter writes the GeoPackage: the outputs equal those
     of the forked documents and of the single-process run (every table byte for byte, every
     GeoPackage layer by content hash, the three maps byte for byte)."""
