@@ -549,8 +549,9 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         t0 = time.perf_counter()
         forks = None
         if ctx.executor is not None and ctx.executor.forks_pieces:
-            # threads mode: the documents are drawn by children forked now, before this
-            # stage starts its writer thread (no other stage runs beside the last one), one
+            # threads and dask mode on Linux: the documents are drawn by children forked now,
+            # before this stage starts its writer thread (no other stage runs beside the last
+            # one; in dask mode only the client's own event-loop thread does), one
             # per document; the maps' contents are made here once and inherited, the
             # report's in its child
             specs = audience_maps(ctx, up, stations, zones, rejected)
@@ -571,10 +572,12 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
             return time.perf_counter() - start
 
         overlap = ctx.executor is not None and ctx.executor.overlaps_stages
-        # Where the documents are drawn elsewhere (on the cluster in dask mode, by forked
-        # children in threads mode) this process has the GeoPackage to write meanwhile: it
+        # Where the documents are drawn elsewhere (by forked children on Linux, on the cluster
+        # in dask mode elsewhere) this process has the GeoPackage to write meanwhile: it
         # writes it itself (a child's interpreter and imports cost 1.2 s more CPU on the
-        # national subset in dask mode, at the same wall time).
+        # national subset in dask mode, at the same wall time). Where they are drawn on this
+        # process's threads (threads mode off Linux) a child writes it: GDAL's writer holds
+        # the interpreter lock.
         in_child = overlap and ctx.executor.mode != "dask" and forks is None
         written = writer.submit(write_layers, in_child) if overlap else None
         tables = writer.submit(table_texts) if overlap else None

@@ -1,4 +1,5 @@
-"""Pieces run in children forked from the run's process (pipeline.execution, threads mode).
+"""Pieces run in children forked from the run's process (pipeline.execution, threads and
+dask mode on Linux).
 
 Real processes: each job runs in a child forked at the call, with the parent's memory as it
 was (jobs here are closures, which pickle cannot carry, so nothing was pickled on the way),
@@ -65,12 +66,18 @@ def test_a_child_that_dies_without_a_result_fails_the_call(threads):
         threads.start_in_forks([lambda: os._exit(3)]).results()
 
 
-def test_only_threads_mode_forks():
-    for mode in ("local", "dask"):
-        with make_executor(ExecutionConfig(mode=mode, workers=2)) as ex:
-            assert not ex.forks_pieces
+def test_threads_and_dask_mode_fork_and_count_their_forked_pieces():
+    with make_executor(ExecutionConfig(mode="local", workers=2)) as ex:
+        assert not ex.forks_pieces
+        assert "pieces_in_forked_children" not in ex.describe()
     with make_executor(ExecutionConfig(mode="threads", workers=1)) as ex:
         assert not ex.forks_pieces  # one thread asked for: one thing at a time
+    # dask mode: the documents are drawn by the client's children, not on the cluster (no
+    # cluster is started here: the executor starts one only when the run warms it up)
+    with make_executor(ExecutionConfig(mode="dask", workers=2)) as ex:
+        assert ex.forks_pieces
+        assert ex.start_in_forks([lambda: 1, lambda: 2]).results() == [1, 2]
+        assert ex.describe()["pieces_in_forked_children"] == 2
 
 
 def test_a_child_writes_through_fresh_standard_streams_on_the_same_files(threads, capfd):
