@@ -329,6 +329,44 @@ def _run_scenario(sc: scenarios.Scenario, execution: str, out: Path, *flags: str
         cfg_here.unlink(missing_ok=True)
 
 
+def _cpu_model() -> str:
+    """The processor's model name (``/proc/cpuinfo`` on Linux, else the platform's word)."""
+    try:
+        for line in Path("/proc/cpuinfo").read_text(encoding="utf-8").splitlines():
+            if line.startswith("model name"):
+                return line.split(":", 1)[1].strip()
+    except OSError:
+        pass
+    return platform.processor() or platform.machine()
+
+
+def _packages() -> dict[str, str]:
+    """Versions of the libraries the run's speed depends on (those the run's manifest lists,
+    and the compiler and the cluster)."""
+    from importlib import metadata
+
+    from pipeline.runner import _package_versions
+
+    out = _package_versions()
+    for name in ("numba", "dask", "distributed", "pyarrow"):
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = "not installed"
+    return out
+
+
+def _commit() -> str | None:
+    """The checked-out commit of the repository, or None outside a git checkout."""
+    try:
+        r = subprocess.run(
+            ["git", "rev-parse", "HEAD"], cwd=REPO, capture_output=True, text=True, timeout=10
+        )
+    except (OSError, subprocess.SubprocessError):
+        return None
+    return (r.stdout.strip() or None) if r.returncode == 0 else None
+
+
 def dask_measurements(sc: scenarios.Scenario, notes: dict, workers: int = 2) -> dict:
     """``dask_2_workers_speedup`` and ``dask_results_identical``.
 
@@ -619,6 +657,11 @@ def main(argv: list[str] | None = None) -> int:
             "numpy": np.__version__,
             "rasterio": rasterio.__version__,
             "gdal": rasterio.__gdal_version__,
+            # ratios against a floor or a baseline moved by 40 % between two machines of the
+            # same kind with different packages (2026-12-02/03): record what to tell them by
+            "cpu_model": _cpu_model(),
+            "packages": _packages(),
+            "commit": _commit(),
         },
     }
     notes: dict[str, str] = {}
