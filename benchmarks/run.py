@@ -435,8 +435,10 @@ def state_run_measurements(
 
     The shared machine's speed drifts by up to 2× within minutes, so each mode runs
     ``repeats`` times, the two modes alternately, after one untimed import; times are the
-    median of their runs and the floor the median of as many floors (every sample is kept
-    under ``<prefix>_run_samples``). Peak RSS is the largest of the runs."""
+    median of their runs and the floor the median of as many floors, each timed between the
+    two runs of its repeat; ``<prefix>_run_vs_io_floor`` is the median of each repeat's run
+    over its own floor (``<prefix>_run_median_vs_floor_median`` divides the medians; every
+    sample is kept under ``<prefix>_run_samples``). Peak RSS is the largest of the runs."""
     out: dict = {
         f"{prefix}_run_s": None,
         f"{prefix}_run_peak_rss_mb": None,
@@ -444,6 +446,7 @@ def state_run_measurements(
     }
     _warm_up_imports()
     samples: dict[str, list[dict]] = {"overlap": [], "local": []}
+    floors: list[dict] = []
     with tempfile.TemporaryDirectory(prefix=f"altigrade-{prefix}-run-") as tmp:
         for i in range(repeats):
             for name, extra in (("overlap", STATE_RUN_EXECUTION), ("local", 'mode = "local"\n')):
@@ -462,17 +465,29 @@ def state_run_measurements(
                     m = {}
                 r["manifest"] = m
                 samples[name].append(r)
+                if name == "overlap":
+                    # this repeat's floor, timed between its two runs: the shared machine's
+                    # speed drifts within minutes, so each run is divided by the floor
+                    # timed beside it
+                    floors.append(io_floor(sc))
             if i == 0:
                 same = _run_outputs_equal(Path(tmp) / "local0", Path(tmp) / "overlap0")
-    floors = [io_floor(sc) for _ in range(repeats)]
     out[f"{prefix}_run_returncode"] = 0
     out[f"{prefix}_run_outputs_equal_local"] = all(same.values())
 
     def median_run(runs: list[dict]) -> dict:
         return sorted(runs, key=lambda r: r["wall_s"])[len(runs) // 2]
 
+    def median(values: list[float]) -> float:
+        return sorted(values)[len(values) // 2]
+
     r, loc = median_run(samples["overlap"]), median_run(samples["local"])
     floor = sorted(floors, key=lambda f: f["decoded_read_s"])[len(floors) // 2]
+    # each repeat's run over the floor timed beside it; the key is their median
+    ratios = {
+        name: [x["wall_s"] / f["decoded_read_s"] for x, f in zip(runs, floors, strict=True)]
+        for name, runs in samples.items()
+    }
     m = r["manifest"]
     out[f"{prefix}_run_stage_s"] = m.get("timings_s")
     out[f"{prefix}_run_stage_spans_s"] = m.get("stage_spans_s")
@@ -486,16 +501,20 @@ def state_run_measurements(
             f"{prefix}_io_floor_s": floor["decoded_read_s"],
             f"{prefix}_io_raw_read_s": floor["raw_read_s"],
             f"{prefix}_input_bytes": floor["input_bytes"],
-            f"{prefix}_run_vs_io_floor": r["wall_s"] / floor["decoded_read_s"],
+            f"{prefix}_run_vs_io_floor": median(ratios["overlap"]),
+            f"{prefix}_run_median_vs_floor_median": r["wall_s"] / floor["decoded_read_s"],
             f"{prefix}_run_vs_raw_byte_read": r["wall_s"] / max(floor["raw_read_s"], 1e-9),
             f"{prefix}_run_local_s": loc["wall_s"],
             f"{prefix}_run_local_peak_rss_mb": max(x["peak_rss_mb"] or 0 for x in samples["local"]),
-            f"{prefix}_run_local_vs_io_floor": loc["wall_s"] / floor["decoded_read_s"],
+            f"{prefix}_run_local_vs_io_floor": median(ratios["local"]),
             f"{prefix}_run_samples": {
                 "overlap_wall_s": [x["wall_s"] for x in samples["overlap"]],
                 "local_wall_s": [x["wall_s"] for x in samples["local"]],
                 "io_floor_s": [f["decoded_read_s"] for f in floors],
-                "statistic": f"median of {repeats}",
+                "overlap_vs_floor": ratios["overlap"],
+                "local_vs_floor": ratios["local"],
+                "statistic": f"median of {repeats}; ratios: median of each repeat's run over "
+                "the floor timed between its two runs",
             },
         }
     )
