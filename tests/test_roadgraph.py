@@ -783,3 +783,51 @@ def test_graph_survives_the_stage_cache_unchanged(tmp_path):
     desc.write_text(desc.read_text().replace("pipeline.roadgraph.RoadGraph", "os.system"))
     with pytest.raises(ValueError, match="not a pipeline class"):
         runner._load(tmp_path, names)
+
+
+def _segmentize_reference(geoms: np.ndarray, spacing: float):
+    """The reference: GEOS's own densifier through shapely (``segmentize``)."""
+    dens = shapely.segmentize(geoms, max_segment_length=spacing)
+    return shapely.get_coordinates(dens, return_index=True)
+
+
+@pytest.mark.parametrize("spacing", [0.37, 1.0, 2.5, 30.0, 1e6])
+def test_densified_coordinates_equal_geos_segmentize_bit_for_bit(spacing):
+    # Reference: shapely.segmentize (GEOS's Densifier), compared bit for bit. Lines with
+    # random vertices, repeated vertices, segments exactly a multiple of the spacing long,
+    # an empty line and a missing geometry.
+    rng = np.random.default_rng(7)
+    lines = [
+        LineString(rng.uniform(-50, 50, size=(int(rng.integers(2, 9)), 2))) for _ in range(300)
+    ]
+    lines += [
+        LineString([(0, 0), (0, 0), (3, 4), (3, 4), (10, 4)]),  # repeated vertices
+        LineString([(0, 0), (10 * spacing, 0), (10 * spacing, 3 * spacing)]),  # exact multiples
+        LineString(),
+        None,
+        LineString([(1e7, -1e7), (1e7 + 0.1, -1e7 + 123.4)]),  # large coordinates
+    ]
+    geoms = np.array(lines, dtype=object)
+    xy, line = rg.densified_coordinates(geoms, spacing)
+    ref_xy, ref_line = _segmentize_reference(geoms, spacing)
+    assert xy.shape == ref_xy.shape
+    assert np.array_equal(xy.view(np.int64), ref_xy.view(np.int64))  # same bits
+    assert np.array_equal(line, ref_line)
+
+
+def test_densified_coordinates_leave_other_geometries_to_geos():
+    # a MultiLineString is densified part by part by GEOS; concatenating its parts would add
+    # a segment between them, so it takes GEOS's own path (reference: shapely.segmentize)
+    geoms = np.array(
+        [MultiLineString([[(0, 0), (5, 0)], [(9, 9), (9, 20)]]), LineString([(0, 0), (0, 7)])],
+        dtype=object,
+    )
+    xy, line = rg.densified_coordinates(geoms, 2.0)
+    ref_xy, ref_line = _segmentize_reference(geoms, 2.0)
+    assert np.array_equal(xy, ref_xy) and np.array_equal(line, ref_line)
+    # a line of one repeated vertex: GEOS refuses to make it, and so does this
+    zero = np.array([LineString([(1, 1), (1, 1)])], dtype=object)
+    with pytest.raises(shapely.errors.GEOSException):
+        _segmentize_reference(zero, 2.0)
+    with pytest.raises(shapely.errors.GEOSException):
+        rg.densified_coordinates(zero, 2.0)
