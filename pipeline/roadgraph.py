@@ -1839,6 +1839,17 @@ def densified_coordinates(geometry: np.ndarray, spacing_m: float) -> tuple[np.nd
     return out, line
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _put(out, line, o, k, x, y, write):
+    """Writes vertex (x, y) of line k at row o of ``out`` when ``write``; the next row."""
+    if write:
+        out[o, 0] = x
+        out[o, 1] = y
+        line[o] = k
+        return o + 1
+    return o
+
+
 @njit(cache=True, nogil=True)
 def _densify(xy, first, count, spacing, sizes, out, line):
     """:func:`densified_coordinates`' loop: with an empty ``out`` it counts each line's
@@ -1872,23 +1883,13 @@ def _densify(xy, first, count, spacing, sizes, out, line):
                         px = x0 + t * (x1 - x0)
                         py = y0 + t * (y1 - y0)
                         if px != lx or py != ly:  # GEOS adds without repeats
-                            if write:
-                                out[o, 0] = px
-                                out[o, 1] = py
-                                line[o] = k
-                                o += 1
+                            o = _put(out, line, o, k, px, py, write)
                             n += 1
-                            lx = px
-                            ly = py
+                            lx, ly = px, py
             if n == 0 or x1 != lx or y1 != ly:
-                if write:
-                    out[o, 0] = x1
-                    out[o, 1] = y1
-                    line[o] = k
-                    o += 1
+                o = _put(out, line, o, k, x1, y1, write)
                 n += 1
-                lx = x1
-                ly = y1
+                lx, ly = x1, y1
         sizes[k] = n
 
 
