@@ -831,3 +831,10 @@ def test_densified_coordinates_leave_other_geometries_to_geos():
         _segmentize_reference(zero, 2.0)
     with pytest.raises(shapely.errors.GEOSException):
         rg.densified_coordinates(zero, 2.0)
+    # a spacing that is not positive: refused as GEOS refuses it
+    line = np.array([LineString([(0, 0), (0, 7)])], dtype=object)
+    for spacing in (0.0, -1.0):
+        with pytest.raises(shapely.errors.GEOSException):
+            _segmentize_reference(line, spacing)
+        with pytest.raises(shapely.errors.GEOSException):
+            rg.densified_coordinates(line, spacing)
