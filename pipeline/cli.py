@@ -7,6 +7,7 @@ Exit status: 0 success; 2 bad input or configuration (one clear message, no trac
 from __future__ import annotations
 
 import argparse
+import gc
 import os
 import sys
 from collections.abc import Sequence
@@ -16,7 +17,7 @@ from pipeline import __version__
 from pipeline.cautions import CAUTION_LINE as CAUTION
 from pipeline.errors import AltigradeError
 
-__all__ = ["main", "build_parser", "small_pages_for_numpy"]
+__all__ = ["main", "command", "build_parser", "small_pages_for_numpy"]
 
 
 EPILOG = f"""Exit status: 0 done, 2 bad input or configuration, 1 internal error.
@@ -231,6 +232,24 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 1
 
 
+def command() -> int:
+    """The ``altigrade`` program (and ``python -m pipeline.cli``): :func:`main`, then the
+    objects it made are left for the process's end to reclaim.
+
+    When the command returns, every output is written, closed and renamed into place. What
+    is left is the interpreter's shutdown, whose garbage collections would traverse every
+    object the run still holds: about a second on the benchmark scenarios, on one core,
+    after the work is done (measured on the national subset, 1.1-1.3 s of an 18 s run).
+    ``gc.freeze`` moves them to the permanent generation, which those collections skip; the
+    operating system takes the memory back when the process ends, as it would anyway. Exit
+    handlers still run and files are still flushed. Only for the process's own command:
+    :func:`main` called from Python code (tests, notebooks) leaves the collector alone.
+    """
+    code = main()
+    gc.freeze()
+    return code
+
+
 def _dispatch(args, con: _Console) -> int:
     from pipeline.config import load_config
     from pipeline.stages import run, validate_inputs
@@ -325,4 +344,4 @@ def _compare(args, con: _Console) -> int:
 
 
 if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())
+    sys.exit(command())

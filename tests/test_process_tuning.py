@@ -6,6 +6,8 @@
   NumPy's own switch, private, used here only to read the setting back).
 - The road graph is read and built collecting cyclic garbage less often; the collector's
   thresholds are restored after (CPython ``gc.get_threshold`` / ``gc.set_threshold``).
+- The program's own command freezes the collector when it is done, in a real process, with
+  main's exit status; ``main`` called from Python does not (CPython ``gc.freeze``).
 """
 
 from __future__ import annotations
@@ -110,3 +112,66 @@ def test_thresholds_already_higher_are_kept():
         assert gc.get_threshold() == (1_000_000, 5, 500)
     finally:
         gc.set_threshold(*before)
+
+
+# The program's end: ``command`` (the console script and ``python -m pipeline.cli``) freezes
+# the collector after ``main`` returns, so that the interpreter's shutdown collections skip
+# what the run made (CPython ``gc.freeze`` / ``gc.get_freeze_count``; the shutdown
+# collections leave the permanent generation alone, CPython's ``Python/gc.c``).
+END_PROBE = (
+    "import atexit, gc, sys\n"
+    "atexit.register(lambda: print('frozen', gc.get_freeze_count()))\n"
+    "from pipeline.cli import command\n"
+    "sys.argv = ['altigrade', *sys.argv[1:]]\n"
+    "sys.exit(command())\n"
+)
+
+
+def _end_probe(*args: str) -> subprocess.CompletedProcess:
+    env = dict(os.environ, PYTHONPATH=str(REPO))
+    return subprocess.run(
+        [sys.executable, "-c", END_PROBE, *args],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
+
+
+def test_the_program_leaves_its_objects_to_the_process_end(small_demo_inputs, tmp_path):
+    d = small_demo_inputs
+    cfg = tmp_path / "run.toml"
+    cfg.write_text(
+        "[inputs]\n"
+        f'stations = "{(d / "stations.csv").as_posix()}"\n'
+        f'dem = "{(d / "dem.tif").as_posix()}"\n'
+        f'roads = "{(d / "roads.gpkg").as_posix()}"\n',
+        encoding="utf-8",
+    )
+    r = _end_probe("-q", "validate", str(cfg))
+    assert r.returncode == 0, r.stderr
+    frozen = int(r.stdout.split("frozen")[-1])
+    assert frozen > 10_000  # every module, config and table object the command made
+
+
+def test_the_programs_exit_status_is_mains(tmp_path):
+    # a config that does not exist: exit 2 with one message, frozen or not
+    r = _end_probe("-q", "validate", str(tmp_path / "missing.toml"))
+    assert r.returncode == 2
+    assert "missing.toml" in r.stderr
+    assert "Traceback" not in r.stderr
+
+
+def test_main_called_from_python_leaves_the_collector_alone(tmp_path):
+    from pipeline import cli
+
+    before = gc.get_freeze_count()
+    assert cli.main(["-q", "validate", str(tmp_path / "missing.toml")]) == 2
+    assert gc.get_freeze_count() == before
+
+
+def test_the_installed_command_is_the_freezing_entry_point():
+    from importlib.metadata import entry_points
+
+    (ep,) = entry_points(group="console_scripts", name="altigrade")
+    assert ep.value == "pipeline.cli:command"
