@@ -329,3 +329,57 @@ def test_a_stage_started_after_one_listed_later_is_refused(tmp_path):
         tmp_path / "o2",
         today=dt.date(2026, 12, 1),
     )
+
+
+# ------------------------------------------------------------------ the stages' code in keys
+def test_code_hash_reads_a_module_without_importing_it(tmp_path, monkeypatch):
+    import importlib
+    import sys
+
+    from pipeline.runner import _code_hash
+
+    (tmp_path / "probe_stage_code.py").write_text("VALUE = 1\n", encoding="utf-8")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    importlib.invalidate_caches()
+    before = _code_hash(["probe_stage_code"])
+    assert "probe_stage_code" not in sys.modules
+    # the same key once the module is imported: a stage's key may not depend on import order
+    importlib.import_module("probe_stage_code")
+    monkeypatch.delitem(sys.modules, "probe_stage_code")
+    assert _code_hash(["probe_stage_code"]) == before
+    # a change in the code changes the key
+    (tmp_path / "probe_stage_code.py").write_text("VALUE = 2\n", encoding="utf-8")
+    importlib.invalidate_caches()
+    assert _code_hash(["probe_stage_code"]) != before
+
+
+def test_code_hash_of_a_missing_module_says_which(tmp_path):
+    from pipeline.runner import _code_hash
+
+    with pytest.raises(ModuleNotFoundError, match="no_such_stage_module"):
+        _code_hash(["no_such_stage_module"])
+
+
+def test_keys_are_computed_before_the_map_and_report_code_is_imported(tmp_path):
+    # a fresh interpreter: the run's keys need the modules' text, not the modules
+    import subprocess
+    import sys
+
+    from conftest import REPO
+
+    probe = (
+        "import sys\n"
+        "from pipeline.runner import _code_hash\n"
+        "_code_hash(['pipeline.maps', 'pipeline.webmap', 'pipeline.report'])\n"
+        "print(sorted(m for m in ('pipeline.maps', 'pipeline.webmap', 'pipeline.report',"
+        " 'folium', 'matplotlib') if m in sys.modules))\n"
+    )
+    r = subprocess.run(
+        [sys.executable, "-c", probe],
+        cwd=REPO,
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert r.returncode == 0, r.stderr
+    assert r.stdout.strip() == "[]"
