@@ -79,7 +79,7 @@ class Executor:
         if self.mode != "dask" or self._client is not None or self._starting is not None:
             return
         if not self.config.scheduler:  # first, so that it starts before the stages' threads
-            self._forked = _start_fork_server()
+            self._forked = _start_fork_server(self._worker_modules())
 
         def connect() -> None:
             try:
@@ -211,6 +211,15 @@ class Executor:
         return out
 
     # -------------------------------------------------------------------------- internals
+    def _worker_modules(self) -> tuple[str, ...]:
+        """What a worker imports when it starts: the stages' partitions, and the map and
+        report code only where the documents are drawn on the cluster. Where they are drawn
+        by forked children of this process (:attr:`forks_pieces`), the fork server that
+        imported folium and matplotlib too took 2.5 s of CPU on the national subset, beside
+        the run's first stages, against 1.7 s without them, and its workers were up about a
+        second later (measured)."""
+        return _WORKER_MODULES + (() if self.forks_pieces else _DOCUMENT_MODULES)
+
     def _map_dask(self, fn: Callable[..., Any], items: list[Any], shared: dict[str, Any]) -> list:
         """:meth:`map` in ``dask`` mode.
 
@@ -347,7 +356,7 @@ class Executor:
             "distributed.nanny.pre-spawn-environ": _worker_environ(),
             "distributed.worker.profile.enabled": False,
         }
-        if self._forked or _start_fork_server():
+        if self._forked or _start_fork_server(self._worker_modules()):
             settings["distributed.worker.multiprocessing-method"] = "forkserver"
         with dask.config.set(settings):
             self._cluster = LocalCluster(
@@ -360,11 +369,11 @@ class Executor:
                 memory_limit=self.config.worker_memory_limit or "auto",
             )
         self._client = Client(self._cluster, timeout=timeout)
-        # import the pipeline in every worker now, not inside the first task; the map and
-        # report code too, which the last stage's documents need (folium, matplotlib). Workers
-        # forked from the fork server have all of it already; spawned ones and those of a
-        # cluster at execution.scheduler import it here (seconds each, measured)
-        for module in _WORKER_MODULES:
+        # import the pipeline in every worker now, not inside the first task (and the map
+        # and report code where the documents are drawn on the cluster). Workers forked from
+        # the fork server have it already; spawned ones and those of a cluster at
+        # execution.scheduler import it here (seconds each, measured)
+        for module in self._worker_modules():
             self._client.run(importlib.import_module, module)
 
 
@@ -385,10 +394,10 @@ def _worker_environ() -> dict[str, Any]:
     }
 
 
-def _start_fork_server() -> bool:
+def _start_fork_server(modules: Sequence[str]) -> bool:
     """Start Python's fork server (``multiprocessing`` start method ``forkserver``) now, with
-    the pipeline, Dask's worker and the map and report code imported in it, so that each
-    worker of a local cluster is forked from it ready to work, instead of being a fresh
+    Dask's worker and ``modules`` (:meth:`Executor._worker_modules`) imported in it, so that
+    each worker of a local cluster is forked from it ready to work, instead of being a fresh
     interpreter that imports all of that again (about two seconds of CPU per worker,
     measured). Returns False where the platform has no fork server (the workers are then
     spawned, Dask's default).
@@ -408,7 +417,7 @@ def _start_fork_server() -> bool:
         env["PYTHONHASHSEED"] = _DASK_HASH_SEED
     os.environ.update(env)
     multiprocessing.get_context("forkserver").set_forkserver_preload(
-        ["distributed", "distributed.nanny", *_WORKER_MODULES]
+        ["distributed", "distributed.nanny", *modules]
     )
     forkserver.ensure_running()
     return True
@@ -548,8 +557,12 @@ class _Claims:
             return self._next >= self._n
 
 
-#: Modules every worker of a local cluster imports when it starts.
-_WORKER_MODULES = ("pipeline.stages", "pipeline.maps", "pipeline.webmap", "pipeline.report")
+#: Modules every worker imports when it starts: the stages' partitions.
+_WORKER_MODULES = ("pipeline.stages", "pipeline.zones")
+
+#: Modules the workers import too where the documents are drawn on the cluster (not in
+#: forked children of the client): the map and report code (folium, matplotlib).
+_DOCUMENT_MODULES = ("pipeline.maps", "pipeline.webmap", "pipeline.report")
 
 #: mallopt parameter number of glibc's M_ARENA_MAX (malloc.h).
 _M_ARENA_MAX = -8

@@ -274,7 +274,7 @@ def held_cluster(monkeypatch):
         self._client = client
 
     monkeypatch.setattr(Executor, "_connect", connect)
-    monkeypatch.setattr("pipeline.execution._start_fork_server", lambda: False)
+    monkeypatch.setattr("pipeline.execution._start_fork_server", lambda modules: False)
     return up, client
 
 
@@ -337,7 +337,7 @@ def test_a_cluster_that_fails_to_start_still_fails_the_run(monkeypatch):
         raise ConfigError("execution.scheduler: nothing answered")
 
     monkeypatch.setattr(Executor, "_connect", connect)
-    monkeypatch.setattr("pipeline.execution._start_fork_server", lambda: False)
+    monkeypatch.setattr("pipeline.execution._start_fork_server", lambda modules: False)
     ex = Executor(ExecutionConfig(mode="dask", workers=2))
     ex.warm_up()
     with pytest.raises(ConfigError, match="nothing answered"):
@@ -354,7 +354,10 @@ def probe(_):
     return {
         "pid": os.getpid(),
         "ppid": os.getppid(),
-        "loaded": sorted(m for m in ("pipeline.stages", "pipeline.report") if m in sys.modules),
+        "loaded": sorted(
+            m for m in ("pipeline.stages", "pipeline.zones", "pipeline.report", "folium")
+            if m in sys.modules
+        ),
         "omp": os.environ.get("OMP_NUM_THREADS"),
         "trim": os.environ.get("MALLOC_TRIM_THRESHOLD_"),
         "seed": os.environ.get("PYTHONHASHSEED"),
@@ -370,9 +373,30 @@ print(json.dumps(seen))
 """
 
 
+def test_workers_import_the_document_code_only_where_the_documents_go_to_them(monkeypatch):
+    from pipeline import execution
+    from pipeline.config import ExecutionConfig
+    from pipeline.execution import Executor
+
+    ex = Executor(ExecutionConfig(mode="dask", workers=2))
+    monkeypatch.setattr(execution.sys, "platform", "linux")
+    assert ex.forks_pieces
+    assert ex._worker_modules() == ("pipeline.stages", "pipeline.zones")
+    monkeypatch.setattr(execution.sys, "platform", "darwin")  # no forked documents there
+    assert not ex.forks_pieces
+    assert ex._worker_modules() == (
+        "pipeline.stages",
+        "pipeline.zones",
+        "pipeline.maps",
+        "pipeline.webmap",
+        "pipeline.report",
+    )
+
+
 def test_local_workers_are_forked_ready_from_a_fork_server():
-    """The workers of a local cluster are forked from a fork server that has the pipeline
-    (map and report code included) imported, with Dask's thread limits and hash seed but not
+    """The workers of a local cluster are forked from a fork server that has the stages'
+    code imported (not the map and report code: on Linux the documents are drawn by forked
+    children of the client), with Dask's thread limits and hash seed but not
     its malloc trim threshold (see pipeline.execution._worker_environ). In a fresh process:
     the fork server is one per process."""
     import os
@@ -394,5 +418,5 @@ def test_local_workers_are_forked_ready_from_a_fork_server():
     assert seen["on_cluster"] == 1
     assert seen["pid"] != seen["client"]
     assert seen["ppid"] != seen["client"]  # the fork server's child, not the client's
-    assert seen["loaded"] == ["pipeline.report", "pipeline.stages"]
+    assert seen["loaded"] == ["pipeline.stages", "pipeline.zones"]
     assert seen["omp"] == "1" and seen["trim"] is None and seen["seed"] == "6640"
