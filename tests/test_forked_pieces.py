@@ -8,6 +8,7 @@ and only the result comes back.
 
 from __future__ import annotations
 
+import json
 import os
 import sys
 
@@ -121,6 +122,10 @@ def test_without_forks_the_documents_are_drawn_on_threads_and_the_outputs_are_th
     ):
         outs[name] = tmp_path / name
         run(config(name, toml), outs[name])
+    if sys.platform.startswith("linux"):
+        # three maps, the report and the tables' CSV text, each in a forked child
+        manifest = json.loads((outs["forked"] / "manifest.json").read_text(encoding="utf-8"))
+        assert manifest["execution"]["pieces_in_forked_children"] == 5
     children = []
     real = layer_writer.write_gpkg_layers_in_child
     monkeypatch.setattr(
