@@ -701,9 +701,19 @@ def read_vector_top(
     except Exception as exc:
         raise InputFileError(f"{path}: cannot read the {what} ({one_line(exc)})") from None
     cols = [c for c in by if c in fields]
-    attrs, _notes = _read_frame(
-        path, name, what, columns=cols, read_geometry=False, fid_as_index=True
-    )
+    attrs = None
+    try:
+        # through GDAL's Arrow stream (the ranking columns of the state's 507,415 roads: 0.08 s
+        # against 0.52 s alone, and other threads run meanwhile); the usual way if it fails
+        attrs, _notes = _read_frame(
+            path, name, what, columns=cols, read_geometry=False, fid_as_index=True, use_arrow=True
+        )
+    except InputFileError:
+        attrs = None
+    if attrs is None:
+        attrs, _notes = _read_frame(
+            path, name, what, columns=cols, read_geometry=False, fid_as_index=True
+        )
     total = len(attrs)
     if total <= budget:
         return read_vector(path, what=what, layer=name), total

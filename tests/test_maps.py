@@ -76,6 +76,36 @@ def test_reading_only_the_busiest_rows_matches_thinning_the_whole_file(
     assert got.geometry.geom_equals_exact(expect.geometry.reset_index(drop=True), tolerance=0).all()
 
 
+@pytest.mark.parametrize("arrow_fails", [False, True])
+def test_the_ranking_columns_are_read_by_arrow_or_the_usual_way_alike(
+    tmp_path, monkeypatch, arrow_fails
+):
+    """Integer ranks with ties: the rows kept are those of thinning the layer read back by
+    GDAL, whether the ranking column comes through GDAL's Arrow stream or, where that read
+    fails, the usual way."""
+    import pipeline.io as io_mod
+
+    g = lines({"aadt": np.r_[np.arange(15), np.arange(15)], "road_class": ["x"] * 30})
+    path = tmp_path / "r.gpkg"
+    g.to_file(path)
+    plain = io_mod._read_frame
+    arrow_calls = []
+
+    def probe(path, layer, what, **kw):
+        if kw.get("use_arrow"):
+            arrow_calls.append(kw)
+            if arrow_fails:
+                raise InputFileError(f"{path}: cannot read the {what} (no Arrow stream)")
+        return plain(path, layer, what, **kw)
+
+    monkeypatch.setattr(io_mod, "_read_frame", probe)
+    got, total = read_vector_top(path, what="roads", budget=9, by=("aadt",))
+    want, _ = busiest(read_vector(path, what="roads"), 9, ("aadt",))
+    assert total == 30 and len(arrow_calls) == 1
+    assert got["aadt"].tolist() == want["aadt"].tolist()
+    assert got.geometry.geom_equals_exact(want.geometry.reset_index(drop=True), 0).all()
+
+
 def test_reading_the_busiest_rows_without_the_ranking_column_keeps_the_first(tmp_path):
     g = lines({"road_class": [f"c{i}" for i in range(9)]})
     g.to_file(tmp_path / "r.gpkg")
