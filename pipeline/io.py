@@ -521,6 +521,15 @@ def _read_frame(path: Path, layer: str | None, what: str, **open_options: Any):
     return gdf, [f"{path.name}: {one_line(w.message)}" for w in caught]
 
 
+def _read_frame_by_arrow(path: Path, layer: str | None, what: str, **open_options: Any):
+    """:func:`_read_frame` through GDAL's Arrow stream (faster, and other threads run
+    meanwhile), or the usual way where that read fails."""
+    try:
+        return _read_frame(path, layer, what, use_arrow=True, **open_options)
+    except InputFileError:
+        return _read_frame(path, layer, what, **open_options)
+
+
 def _read_station_vector(path: Path, layer: str | None) -> RawTable:
     spreadsheet = path.suffix.lower() in SPREADSHEET_SUFFIXES
     name = _pick_layer(path, layer, "stations", "inputs.stations_layer")
@@ -652,14 +661,7 @@ def read_vector(
     if not path.exists():
         raise InputFileError(f"{path}: {what} file not found")
     name = _pick_layer(path, layer, what.replace(" ", "_"), None)
-    gdf = None
-    if arrow:
-        try:
-            gdf, _notes = _read_frame(path, name, what, use_arrow=True)
-        except InputFileError:
-            gdf = None
-    if gdf is None:
-        gdf, _notes = _read_frame(path, name, what)
+    gdf, _notes = (_read_frame_by_arrow if arrow else _read_frame)(path, name, what)
     if not isinstance(gdf, gpd.GeoDataFrame) or gdf.crs is None:
         raise InputFileError(f"{path}: the {what} layer has no geometry or no CRS")
     return gdf
@@ -701,19 +703,10 @@ def read_vector_top(
     except Exception as exc:
         raise InputFileError(f"{path}: cannot read the {what} ({one_line(exc)})") from None
     cols = [c for c in by if c in fields]
-    attrs = None
-    try:
-        # through GDAL's Arrow stream (the ranking columns of the state's 507,415 roads: 0.08 s
-        # against 0.52 s alone, and other threads run meanwhile); the usual way if it fails
-        attrs, _notes = _read_frame(
-            path, name, what, columns=cols, read_geometry=False, fid_as_index=True, use_arrow=True
-        )
-    except InputFileError:
-        attrs = None
-    if attrs is None:
-        attrs, _notes = _read_frame(
-            path, name, what, columns=cols, read_geometry=False, fid_as_index=True
-        )
+    # the ranking columns of the state's 507,415 roads: 0.08 s by Arrow against 0.52 s
+    attrs, _notes = _read_frame_by_arrow(
+        path, name, what, columns=cols, read_geometry=False, fid_as_index=True
+    )
     total = len(attrs)
     if total <= budget:
         return read_vector(path, what=what, layer=name), total

@@ -589,7 +589,6 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
         in_child = overlap and ctx.executor.mode != "dask" and forks is None
         written = writer.submit(write_layers, in_child) if overlap else None
         tables = writer.submit(table_texts) if overlap and forks is None else None
-        forked_texts: dict[str, str] | None = None
         if forks is None:
             # the documents are independent: render them as separate pieces
             docs = [
@@ -601,15 +600,12 @@ def _publish(ctx: StageContext, up: dict[str, dict[str, Any]]) -> dict[str, Any]
             ctx.part_timings["publish/document_contents"] = time.perf_counter() - t0
             names = [name for name, _, _ in docs]
             rendered = _map(ctx, _render, [(fn, kw) for _, fn, kw in docs], {})
+            texts = table_texts() if tables is None else tables.result()
         else:
             try:
-                *rendered, forked_texts = forks.results()
+                *rendered, texts = forks.results()  # the tables' child is the last job
             finally:
                 forks.close()
-        if forked_texts is not None:
-            texts = forked_texts
-        else:
-            texts = table_texts() if tables is None else tables.result()
         texts.update(zip(names, rendered, strict=True))
         ctx.part_timings["publish/documents"] = time.perf_counter() - t0
         geopackage_s = write_layers(False) if written is None else written.result()
