@@ -173,18 +173,29 @@ def _justified_vs_posted_figure(stations: pd.DataFrame) -> str:
     return _png(fig)
 
 
+def _whole_column(values: pd.Series) -> bool:
+    """Whether a column's shown numbers are all whole or at least 1,000 (shown without
+    decimals); otherwise those below 1,000 get one decimal, whole ones too, so that a column
+    does not mix "1" and "1.0"."""
+    v = pd.to_numeric(values, errors="coerce").to_numpy(float)
+    v = v[np.isfinite(v)]
+    return bool(((v == np.round(v)) | (np.abs(v) >= 1000)).all())
+
+
 def _table(df: pd.DataFrame, columns: Sequence[tuple[str, str]], max_rows: int = 25) -> str:
     cols = [(c, label) for c, label in columns if c in df.columns]
     head = "".join(f"<th>{html.escape(label)}</th>" for _, label in cols)
+    shown = df.head(max_rows)
+    whole = {c: _whole_column(shown[c]) for c, _ in cols}
     rows = []
-    for _, r in df.head(max_rows).iterrows():
+    for _, r in shown.iterrows():
         cells = []
         for c, _ in cols:
             v = r[c]
             if v is None or (isinstance(v, float) and not np.isfinite(v)):
                 s = "—"
             elif isinstance(v, float | np.floating):
-                s = f"{v:,.0f}" if float(v).is_integer() or abs(v) >= 1000 else f"{v:,.1f}"
+                s = f"{v:,.0f}" if whole[c] or abs(v) >= 1000 else f"{v:,.1f}"
             else:
                 s = str(v)
             cells.append(f"<td>{html.escape(s)}</td>")
