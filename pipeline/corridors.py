@@ -100,10 +100,11 @@ from pipeline.roadgraph import PROFILE_QUANTILE_COLUMNS, RoadGraph
 from pipeline.shortest_paths import (
     TreeWork,
     bounded_tree,
+    compact_csr,
     path_nodes,
     reverse_csr,
     root_tree_sums,
-    tree_flows,
+    source_tree_sums,
 )
 
 try:  # the project's own blending function; a local linear blend otherwise
@@ -907,6 +908,7 @@ def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, An
         np.asarray(adj.indices, dtype=np.int64),
         np.asarray(adj.data, dtype=float),
     )
+    rindptr, rindices = compact_csr(rindptr, rindices)
     reach_m = r_m * (1.0 + CUT_MARGIN_SHARE)
     # destination nodes (unique, in node order) within straight-line reach of a source
     d_local = local[net.d_node]
@@ -927,7 +929,7 @@ def _partition_by_destination(part: _SourceBatch, net: _Network) -> dict[str, An
 
     def grow(chunk: np.ndarray) -> float:
         """The trees of one chunk of roots (work arrays of its own); returns Dijkstra time."""
-        work = TreeWork(k_all, nnz)
+        work = TreeWork(k_all)
         targets = np.zeros(k_all, dtype=bool)
         pos = np.full(k_all, -1, dtype=np.int64)
         mark = np.zeros(k_all, dtype=bool)
@@ -1063,22 +1065,20 @@ def _partition_by_source(part: _SourceBatch, net: _Network) -> dict[str, Any]:
     d_in = d_local >= 0
     d_xy = net.node_xy[net.d_node]
     ent_len = net.length_m[ents]
-    req_clean = net.requirement()[ents]
-    loc = net.local_aki[ents]
-    n_bins = req_clean.shape[1]
+    req_clean = np.ascontiguousarray(net.requirement()[ents])
+    loc = np.ascontiguousarray(net.local_aki[ents], dtype=float)
     cand = net.candidate_aki
     m = part.rows.size
     out = _partition_outputs(m, cand.size, k_all)
-    acc = np.zeros((len(_ACC_FIELDS), nnz))
-    work = TreeWork(k_all, nnz)
+    acc = np.zeros((nnz, len(_ACC_FIELDS)))  # a row per entry (transposed at the end)
+    work = TreeWork(k_all)
     # A tree may stop once every destination that could lie within the range is settled:
     # the flows use only the paths to them. Those within straight-line reach R(1 + margin)
     # of the source are inside every cut, so the stopping point is the same on any cut.
     targets = np.zeros(k_all, dtype=bool)
     reach_m = r_m * (1.0 + CUT_MARGIN_SHARE)
     d_live = d_in & (net.d_weight > 0)
-    indptr = np.asarray(adj.indptr, dtype=np.int64)
-    indices = np.asarray(adj.indices, dtype=np.int64)
+    indptr, indices = compact_csr(adj.indptr, adj.indices)
     t_dij = 0.0
     for j in range(m):
         t0 = time.perf_counter()
@@ -1095,53 +1095,31 @@ def _partition_by_source(part: _SourceBatch, net: _Network) -> dict[str, Any]:
         if split is None:
             continue
         q, reach, _ = split
-        # demand at the destination nodes (in destination order), then subtree sums
-        np.add.at(work.flow, d_local[reach], q[reach])
-        flow_at = tree_flows(work)
-        out["delivered"][j] = flow_at[src_local[j]]
-        settled = work.order[1:k]
-        head = settled[flow_at[settled] > 0]
-        if head.size == 0:
-            continue
-        head = np.sort(head)  # entry order of a tree's edges: by head node
-        tail = work.pred_node[head]
-        flow = flow_at[head]
-        ent = work.pred_entry[head]
-        a = d[tail]
-        ell = ent_len[ent]
-        vd = flow * _share_integral_m(a, a + ell, r_m) / _M_PER_KM
-        mid = a + 0.5 * ell
-        x = dilution * (1.0 - tank_share(mid, r_m)) if dilution > 0 else None
-
-        def tank_at(grade: float, x=x, n_fl=head.size, ent=ent) -> np.ndarray:
-            if x is None:
-                return np.full(n_fl, grade)
-            return _blend(np.full(n_fl, grade), loc[ent], x)
-
-        tank = tank_at(part.aki[j])
-        req_e = req_clean[ent]
-        dbin = np.maximum(req_e - tank[:, None], 0.0)
-        deficit = dbin.sum(axis=1) / n_bins
-        # share of the edge's length (its elevation bins) in deficit
-        in_deficit = np.count_nonzero(dbin > 0, axis=1) / n_bins
-        risk = vd * deficit / r_km
-        out["export_risk"][j] = risk.sum()
-        out["vd_total"][j] = vd.sum()
-        out["vd_deficit"][j] = (vd * in_deficit).sum()
-        for c, grade in enumerate(cand):
-            if not grade > part.aki[j]:  # only grades above today's are asked about
-                out["vd_deficit_cand"][j, c] = np.nan
-                continue
-            in_def_c = np.count_nonzero(req_e > tank_at(grade)[:, None], axis=1) / n_bins
-            out["vd_deficit_cand"][j, c] = (vd * in_def_c).sum()
-        for row, vals in enumerate(
-            (flow, vd, risk, flow * mid, vd * tank, vd * deficit, np.ones(head.size))
-        ):
-            acc[row, ent] += vals
+        # demand at the destination nodes (in destination order), subtree sums, prices
+        (
+            out["delivered"][j],
+            out["export_risk"][j],
+            out["vd_total"][j],
+            out["vd_deficit"][j],
+        ) = source_tree_sums(
+            work,
+            d_local[reach],
+            q[reach],
+            ent_len,
+            req_clean,
+            loc,
+            part.aki[j],
+            cand,
+            r_m,
+            r_km,
+            dilution,
+            acc,
+            out["vd_deficit_cand"][j],
+        )
     work.reset()
-    used = np.flatnonzero(acc[6] > 0)
+    used = np.flatnonzero(acc[:, 6] > 0)
     out["entries"] = ents[used]
-    out["acc"] = acc[:, used]
+    out["acc"] = np.ascontiguousarray(acc[used].T)
     out["dijkstra_s"] = t_dij
     return out
 

@@ -1,7 +1,8 @@
 """Bounded single-source shortest-path trees and flows on them, compiled with Numba.
 
 A pure calculation module. :func:`bounded_tree` grows the shortest-path tree of one source on
-a CSR graph up to a distance limit (Dijkstra's method with a binary heap and lazy deletion);
+a CSR graph up to a distance limit (Dijkstra's method with an indexed binary heap: each node
+at most once, moved up in place when a shorter path is found);
 :func:`tree_flows` sums the demand of every node's subtree in one pass over the nodes in
 reverse settling order. Both work on caller-owned work arrays that are reset only where they
 were touched, so a tree costs time in proportion to the nodes it reaches, not to the graph.
@@ -14,7 +15,7 @@ gives the same tree.
 References
 ----------
 Dijkstra, E. W. (1959), "A note on two problems in connexion with graphs", Numerische
-Mathematik 1, 269–271. Binary heap with lazy deletion: Cormen, Leiserson, Rivest & Stein,
+Mathematik 1, 269–271. Binary heap with decrease-key: Cormen, Leiserson, Rivest & Stein,
 Introduction to Algorithms, 3rd ed. (2009), §6.5 and §24.3 (from memory).
 Lam, Pitrou & Seibert (2015), "Numba: a LLVM-based Python JIT compiler", LLVM-HPC '15.
 """
@@ -27,22 +28,24 @@ from numba import njit
 __all__ = [
     "TreeWork",
     "bounded_tree",
+    "compact_csr",
     "path_nodes",
     "reverse_csr",
     "root_tree_sums",
+    "source_tree_sums",
     "tree_flows",
 ]
 
 
 class TreeWork:
-    """Work arrays for trees on a graph of ``n_nodes`` nodes and ``n_entries`` entries.
+    """Work arrays for trees on a graph of ``n_nodes`` nodes.
 
     ``dist`` [m] is +inf and ``pred_entry`` −1 everywhere the last tree did not touch;
     ``order`` holds the settled nodes of the last tree, nearest first; ``flow`` is zero
     outside it.
     """
 
-    def __init__(self, n_nodes: int, n_entries: int):
+    def __init__(self, n_nodes: int):
         self.dist = np.full(n_nodes, np.inf)
         self.pred_node = np.full(n_nodes, -1, dtype=np.int64)
         self.pred_entry = np.full(n_nodes, -1, dtype=np.int64)
@@ -50,8 +53,9 @@ class TreeWork:
         self.flow = np.zeros(n_nodes)
         self.touched = np.zeros(n_nodes, dtype=np.int64)
         self.no_targets = np.zeros(n_nodes, dtype=np.bool_)
-        self.heap_d = np.zeros(n_entries + 1)
-        self.heap_v = np.zeros(n_entries + 1, dtype=np.int64)
+        self.heap_d = np.zeros(n_nodes + 1)
+        self.heap_v = np.zeros(n_nodes + 1, dtype=np.int64)
+        self.pos = np.full(n_nodes, -1, dtype=np.int64)  # heap slot of each node, or −1
         self.size = 0  # nodes settled in the last tree
         self.n_touched = 0  # nodes given a tentative distance in the last tree
 
@@ -79,9 +83,23 @@ def _reset(touched, k, dist, pred_node, pred_entry, flow):
         flow[x] = 0.0
 
 
-@njit(cache=True, nogil=True)
-def _less(da, va, db, vb):
-    return da < db or (da == db and va < vb)
+@njit(cache=True, nogil=True, inline="always")
+def _sift_up(heap_d, heap_v, pos, i, d, v):
+    """Put node v with key d at heap slot i and move it up to its place."""
+    while i > 0:
+        p = (i - 1) >> 1
+        pd = heap_d[p]
+        pv = heap_v[p]
+        if d < pd or (d == pd and v < pv):
+            heap_d[i] = pd
+            heap_v[i] = pv
+            pos[pv] = i
+            i = p
+        else:
+            break
+    heap_d[i] = d
+    heap_v[i] = v
+    pos[v] = i
 
 
 @njit(cache=True, nogil=True)
@@ -100,21 +118,25 @@ def _dijkstra(
     touched,
     heap_d,
     heap_v,
+    pos,
 ):
     """Settle the nodes within ``limit`` of ``source`` until every target node is settled;
-    returns (settled, touched) counts (in ``order`` and ``touched``)."""
+    returns (settled, touched) counts (in ``order`` and ``touched``). The heap holds each
+    touched, unsettled node once (``pos``: its slot), keyed by (distance, node): a shorter
+    path moves it up in place."""
     left = n_targets
     dist[source] = 0.0
     touched[0] = source
     nt = 1
     heap_d[0] = 0.0
     heap_v[0] = source
+    pos[source] = 0
     hn = 1
     k = 0
     while hn > 0:
         d = heap_d[0]
         x = heap_v[0]
-        # pop the root
+        pos[x] = -2  # settled: never touched again (dist[x] <= every later distance)
         hn -= 1
         if hn > 0:
             ld = heap_d[hn]
@@ -124,48 +146,49 @@ def _dijkstra(
                 c = 2 * i + 1
                 if c >= hn:
                     break
-                if c + 1 < hn and _less(heap_d[c + 1], heap_v[c + 1], heap_d[c], heap_v[c]):
-                    c += 1
-                if _less(heap_d[c], heap_v[c], ld, lv):
-                    heap_d[i] = heap_d[c]
-                    heap_v[i] = heap_v[c]
+                cd = heap_d[c]
+                cv = heap_v[c]
+                if c + 1 < hn:
+                    c2d = heap_d[c + 1]
+                    c2v = heap_v[c + 1]
+                    if c2d < cd or (c2d == cd and c2v < cv):
+                        c += 1
+                        cd = c2d
+                        cv = c2v
+                if cd < ld or (cd == ld and cv < lv):
+                    heap_d[i] = cd
+                    heap_v[i] = cv
+                    pos[cv] = i
                     i = c
                 else:
                     break
             heap_d[i] = ld
             heap_v[i] = lv
-        if d > dist[x]:
-            continue  # a stale heap entry (a node is pushed again only when strictly closer)
+            pos[lv] = i
         order[k] = x
         k += 1
         if target[x]:
             left -= 1
             if left == 0:
-                break  # every target is settled: the paths to them are final
+                break
         for e in range(indptr[x], indptr[x + 1]):
             y = indices[e]
-            nd = d + length[e]  # a settled y has dist[y] <= d <= nd: never updated below
+            nd = d + length[e]
             if nd > limit or nd >= dist[y]:
                 continue
             if dist[y] == np.inf:
                 touched[nt] = y
                 nt += 1
+                i = hn
+                hn += 1
+            else:
+                i = pos[y]
             dist[y] = nd
             pred_node[y] = x
             pred_entry[y] = e
-            # push (nd, y)
-            i = hn
-            hn += 1
-            while i > 0:
-                p = (i - 1) // 2
-                if _less(nd, y, heap_d[p], heap_v[p]):
-                    heap_d[i] = heap_d[p]
-                    heap_v[i] = heap_v[p]
-                    i = p
-                else:
-                    break
-            heap_d[i] = nd
-            heap_v[i] = y
+            _sift_up(heap_d, heap_v, pos, i, nd, y)
+    for i in range(nt):  # left as found, for the next tree
+        pos[touched[i]] = -1
     return k, nt
 
 
@@ -189,8 +212,9 @@ def bounded_tree(
 
     Parameters
     ----------
-    indptr, indices : ndarray of int64
-        CSR structure (entry e runs from its row to ``indices[e]``).
+    indptr, indices : ndarray of int32 or int64
+        CSR structure (entry e runs from its row to ``indices[e]``); int32 (see
+        :func:`compact_csr`) halves the memory a tree walks.
     length_m : ndarray of float
         Entry lengths [m], ≥ 0.
     source : int
@@ -233,10 +257,21 @@ def bounded_tree(
         work.touched,
         work.heap_d,
         work.heap_v,
+        work.pos,
     )
     work.size = int(k)
     work.n_touched = int(nt)
     return work.size
+
+
+def compact_csr(indptr: np.ndarray, indices: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The CSR structure as int32 where every number fits (else int64): the same graph in
+    half the memory, which a tree reads node by node."""
+    small = indptr.size <= np.iinfo(np.int32).max and (
+        indptr.size == 0 or int(indptr[-1]) <= np.iinfo(np.int32).max
+    )
+    dt = np.int32 if small else np.int64
+    return np.asarray(indptr, dtype=dt), np.asarray(indices, dtype=dt)
 
 
 def tree_flows(work: TreeWork) -> np.ndarray:
@@ -484,4 +519,260 @@ def root_tree_sums(
         out["vd_total"],
         out["vd_deficit"],
         out["vd_deficit_cand"],
+    )
+
+
+# ----------------------------------------------------------------------------------------------
+# Trees rooted at a source: the corridor sums of one source's tree
+# ----------------------------------------------------------------------------------------------
+
+
+@njit(cache=True, nogil=True)
+def _block_sum(a, lo, n):
+    """Σ a[lo:lo+n] for n ≤ 128 in NumPy's order: one by one below 8, else eight
+    accumulators over the multiples of eight, combined in pairs, then the rest."""
+    if n < 8:
+        res = 0.0
+        for i in range(lo, lo + n):
+            res += a[i]
+        return res
+    r0, r1, r2, r3 = a[lo], a[lo + 1], a[lo + 2], a[lo + 3]
+    r4, r5, r6, r7 = a[lo + 4], a[lo + 5], a[lo + 6], a[lo + 7]
+    i = lo + 8
+    end8 = lo + n - n % 8
+    while i < end8:
+        r0 += a[i]
+        r1 += a[i + 1]
+        r2 += a[i + 2]
+        r3 += a[i + 3]
+        r4 += a[i + 4]
+        r5 += a[i + 5]
+        r6 += a[i + 6]
+        r7 += a[i + 7]
+        i += 8
+    res = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
+    while i < lo + n:
+        res += a[i]
+        i += 1
+    return res
+
+
+@njit(cache=True, nogil=True)
+def _pairwise_sum(a, lo, n):
+    """Σ a[lo:lo+n] in NumPy's order (pairwise: halves at multiples of eight down to blocks of
+    at most 128, :func:`_block_sum`), so a compiled sum has the bits of ``numpy.sum``.
+    Higham (1993), "The accuracy of floating point summation", SIAM J. Sci. Comput. 14,
+    783–799 (from memory); the block layout is NumPy's own. Written with an explicit stack:
+    Numba's cache cannot reload a recursive function (the process crashes)."""
+    if n <= 128:
+        return _block_sum(a, lo, n)
+    # tasks: (start, length, 0) = sum that range; (0, 0, 1) = add the last two sums
+    t_lo = np.empty(192, dtype=np.int64)
+    t_n = np.empty(192, dtype=np.int64)
+    t_add = np.empty(192, dtype=np.bool_)
+    vals = np.empty(96)
+    nt, nv = 1, 0
+    t_lo[0], t_n[0], t_add[0] = lo, n, False
+    while nt > 0:
+        nt -= 1
+        if t_add[nt]:
+            nv -= 1
+            vals[nv - 1] = vals[nv - 1] + vals[nv]
+        elif t_n[nt] <= 128:
+            vals[nv] = _block_sum(a, t_lo[nt], t_n[nt])
+            nv += 1
+        else:
+            s, m = t_lo[nt], t_n[nt]
+            m2 = m // 2
+            m2 -= m2 % 8
+            t_add[nt] = True  # then add the two halves' sums, left + right
+            t_lo[nt + 1], t_n[nt + 1], t_add[nt + 1] = s + m2, m - m2, False  # right second
+            t_lo[nt + 2], t_n[nt + 2], t_add[nt + 2] = s, m2, False  # left first
+            nt += 3
+    return vals[0]
+
+
+@njit(cache=True, nogil=True)
+def _total(a, n):
+    """``a[:n].sum()`` with NumPy's bits (the reduction starts from 0.0)."""
+    return 0.0 + _pairwise_sum(a, 0, n)
+
+
+@njit(cache=True, nogil=True)
+def _tank_aki(grade, local_aki, mid_m, r_m, dilution):
+    """Tank AKI at distance ``mid_m`` with top-ups: linear blend of the station's grade and
+    the local fuel by the share burned and replaced (see ``pipeline.corridors``)."""
+    if not dilution > 0.0:
+        return grade
+    x = dilution * (1.0 - max(0.0, 1.0 - mid_m / r_m))
+    x = min(max(x, 0.0), 1.0)
+    return (1.0 - x) * grade + x * local_aki
+
+
+@njit(cache=True, nogil=True)
+def _source_tree_sums(
+    order,
+    k,
+    pred_node,
+    pred_entry,
+    dist,
+    flow,
+    dest_node,
+    dest_q,
+    ent_len,
+    req,
+    local_aki,
+    grade,
+    cands,
+    r_m,
+    r_km,
+    dilution,
+    acc,
+    out_cand,
+):
+    """The corridor sums of one source's tree (see :func:`source_tree_sums`)."""
+    for i in range(dest_node.size):
+        flow[dest_node[i]] += dest_q[i]
+    _flows(order, k, pred_node, flow)
+    delivered = flow[order[0]]
+    # the tree's entries that carry flow, in the order of their head nodes
+    n = 0
+    heads = np.empty(max(k - 1, 0), dtype=np.int64)
+    if 8 * k >= flow.size:  # a tree over much of the graph: one pass over the nodes
+        settled = np.zeros(flow.size, dtype=np.bool_)
+        for i in range(1, k):
+            settled[order[i]] = True
+        for y in range(flow.size):
+            if settled[y] and flow[y] > 0.0:
+                heads[n] = y
+                n += 1
+    else:
+        for i in range(1, k):
+            if flow[order[i]] > 0.0:
+                heads[n] = order[i]
+                n += 1
+        heads[:n].sort()
+    heads = heads[:n]
+    n_b = req.shape[1]
+    n_c = cands.size
+    vd = np.empty(n)
+    risk = np.empty(n)
+    vd_in = np.empty(n)
+    vd_cand = np.empty((n_c, n))
+    gap = np.empty(n_b)
+    for i in range(n):
+        y = heads[i]
+        e = pred_entry[y]
+        a = dist[pred_node[y]]
+        ell = ent_len[e]
+        a2 = min(a, r_m)
+        b2 = min(a + ell, r_m)
+        share_m = (b2 - a2) - (b2 * b2 - a2 * a2) / (2.0 * r_m)
+        f = flow[y]
+        v = f * share_m / 1000.0
+        mid = a + 0.5 * ell
+        tank = _tank_aki(grade, local_aki[e], mid, r_m, dilution)
+        cnt = 0
+        for b in range(n_b):  # max(req − tank, 0); NaN stays NaN, as with numpy.maximum
+            d = req[e, b] - tank
+            gap[b] = d if d != d or d > 0.0 else 0.0
+            if d > 0.0:
+                cnt += 1
+        deficit = _total(gap, n_b) / n_b
+        vd[i] = v
+        risk[i] = v * deficit / r_km
+        vd_in[i] = v * (cnt / n_b)
+        for c in range(n_c):
+            if not cands[c] > grade:
+                continue
+            tank_c = _tank_aki(cands[c], local_aki[e], mid, r_m, dilution)
+            cnt_c = 0
+            for b in range(n_b):
+                if req[e, b] > tank_c:
+                    cnt_c += 1
+            vd_cand[c, i] = v * (cnt_c / n_b)
+        acc[e, 0] += f
+        acc[e, 1] += v
+        acc[e, 2] += risk[i]
+        acc[e, 3] += f * mid
+        acc[e, 4] += v * tank
+        acc[e, 5] += v * deficit
+        acc[e, 6] += 1.0
+    for c in range(n_c):
+        out_cand[c] = _total(vd_cand[c], n) if cands[c] > grade else np.nan
+    return delivered, _total(risk, n), _total(vd, n), _total(vd_in, n)
+
+
+def source_tree_sums(
+    work: TreeWork,
+    dest_node: np.ndarray,
+    dest_q: np.ndarray,
+    length_m: np.ndarray,
+    req: np.ndarray,
+    local_aki: np.ndarray,
+    grade: float,
+    cands: np.ndarray,
+    range_m: float,
+    range_km: float,
+    dilution: float,
+    acc: np.ndarray,
+    out_cand: np.ndarray,
+) -> tuple[float, float, float, float]:
+    """Adds the last tree of ``work`` (rooted at a source) to the corridor sums (in place).
+
+    The source sends ``dest_q[i]`` [L/month] to node ``dest_node[i]`` (repeats add up) with
+    tank grade ``grade`` [AKI]. The demand is summed over every subtree into ``work.flow``
+    (the flow on the tree entry into each node). Each entry carrying flow, in the order of
+    its head node: its volume-distance vd = flow ∫ σ [L·km/month] over the entry with
+    σ(y) = max(0, 1 − y/R); the tank AKI at its midpoint (blended towards ``local_aki`` with
+    ``dilution`` > 0); its deficit, the mean over the requirement bins ``req[e]`` [AKI] of
+    max(req − tank, 0); and its risk vd·deficit/R [L·AKI/month]. Adds ``acc`` rows (flow, vd,
+    risk, flow·midpoint distance, vd·tank AKI, vd·deficit, 1; the corridor module's fields)
+    to row e of ``acc`` (shape (entries, 7): an entry's sums share a cache line) and writes,
+    per candidate grade above ``grade``, the volume-distance in deficit to ``out_cand`` (NaN
+    for the others).
+
+    Returns (delivered, export risk, volume-distance, volume-distance in deficit). Every
+    sum is added in NumPy's pairwise order, so the results have the bits of the same sums
+    taken with NumPy arrays.
+
+    Raises
+    ------
+    ValueError
+        If ``req``, ``local_aki``, ``acc`` or ``out_cand`` do not match the entries and
+        candidates (the compiled code does not check its indices).
+    """
+    n_ent = length_m.shape[0]
+    cands = np.asarray(cands, dtype=float)
+    if (
+        req.ndim != 2
+        or req.shape[0] != n_ent
+        or local_aki.shape != (n_ent,)
+        or acc.shape != (n_ent, 7)
+        or out_cand.shape != cands.shape
+    ):
+        raise ValueError(
+            f"source_tree_sums: {n_ent} entries and {cands.size} candidates, but req "
+            f"{req.shape}, local_aki {local_aki.shape}, acc {acc.shape}, out_cand "
+            f"{out_cand.shape}"
+        )
+    return _source_tree_sums(
+        work.order,
+        work.size,
+        work.pred_node,
+        work.pred_entry,
+        work.dist,
+        work.flow,
+        np.asarray(dest_node, dtype=np.int64),
+        np.asarray(dest_q, dtype=float),
+        length_m,
+        req,
+        local_aki,
+        float(grade),
+        cands,
+        float(range_m),
+        float(range_km),
+        float(dilution),
+        acc,
+        out_cand,
     )
