@@ -50,6 +50,9 @@ Method, per source station s (regular AKI below ``sea_level_standard_aki``, volu
    so a station's risk is comparable across networks whatever their edge lengths. It is a
    ranking index for inspections, not a count of knocking engines.
 
+Steps 3–7 run compiled, one pass per source tree
+(:func:`pipeline.shortest_paths.source_tree_sums`), with NumPy's summation order.
+
 Trees rooted at the destinations (``tree_root``)
 -----------------------------------------------
 Where destinations are fewer than sources (towns against stations) and the tank grade does
@@ -106,11 +109,6 @@ from pipeline.shortest_paths import (
     root_tree_sums,
     source_tree_sums,
 )
-
-try:  # the project's own blending function; a local linear blend otherwise
-    from pipeline.octane import blend_linear as _blend_linear
-except ImportError:  # pragma: no cover - octane.py is part of the package
-    _blend_linear = None
 
 __all__ = [
     "CorridorError",
@@ -280,13 +278,6 @@ def tank_share(distance_m: np.ndarray, tank_range_m: float) -> np.ndarray:
     return np.maximum(0.0, 1.0 - d / tank_range_m)
 
 
-def _share_integral_m(a: np.ndarray, b: np.ndarray, r: float) -> np.ndarray:
-    """∫_a^b max(0, 1 − x/R) dx [m] for 0 ≤ a ≤ b."""
-    a2 = np.minimum(a, r)
-    b2 = np.minimum(b, r)
-    return (b2 - a2) - (b2 * b2 - a2 * a2) / (2.0 * r)
-
-
 def subtree_sums(parent: np.ndarray, weight: np.ndarray) -> np.ndarray:
     """Sum of ``weight`` over each node's subtree in a forest.
 
@@ -326,12 +317,6 @@ def subtree_sums(parent: np.ndarray, weight: np.ndarray) -> np.ndarray:
         s[k] = 0.0
         anc = anc[anc]
     return s[:k]
-
-
-def _blend(a: np.ndarray, b: np.ndarray, x: np.ndarray) -> np.ndarray:
-    if _blend_linear is not None:
-        return np.asarray(_blend_linear(a, b, x), dtype=float)
-    return (1.0 - x) * a + x * b  # pragma: no cover
 
 
 def _column(df: pd.DataFrame, name: str, what: str) -> np.ndarray:

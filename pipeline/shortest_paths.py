@@ -170,10 +170,10 @@ def _dijkstra(
         if target[x]:
             left -= 1
             if left == 0:
-                break
+                break  # every target is settled: the paths to them are final
         for e in range(indptr[x], indptr[x + 1]):
             y = indices[e]
-            nd = d + length[e]
+            nd = d + length[e]  # a settled y has dist[y] <= d <= nd: never updated below
             if nd > limit or nd >= dist[y]:
                 continue
             if dist[y] == np.inf:
@@ -600,8 +600,9 @@ def _total(a, n):
 
 @njit(cache=True, nogil=True)
 def _tank_aki(grade, local_aki, mid_m, r_m, dilution):
-    """Tank AKI at distance ``mid_m`` with top-ups: linear blend of the station's grade and
-    the local fuel by the share burned and replaced (see ``pipeline.corridors``)."""
+    """Tank AKI [AKI] after ``mid_m`` [m] with top-ups: the share x = dilution·(1 − σ) of the
+    tank is local fuel, σ = max(0, 1 − d/R) (``pipeline.corridors.tank_share``), blended
+    linearly by volume as ``pipeline.octane.blend_linear`` does: (1 − x)·grade + x·local."""
     if not dilution > 0.0:
         return grade
     x = dilution * (1.0 - max(0.0, 1.0 - mid_m / r_m))
