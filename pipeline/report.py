@@ -174,9 +174,9 @@ def _justified_vs_posted_figure(stations: pd.DataFrame) -> str:
 
 
 def _whole_column(values: pd.Series) -> bool:
-    """Whether a column's shown numbers are all whole or at least 1,000 (shown without
-    decimals); otherwise those below 1,000 get one decimal, whole ones too, so that a column
-    does not mix "1" and "1.0"."""
+    """Whether a column's shown numbers are all whole or at least 1,000 (then all are shown
+    without decimals); otherwise every one gets one decimal, whole and large ones too, so
+    that a column mixes neither "1" with "1.0" nor "303.9" with "1,475"."""
     v = pd.to_numeric(values, errors="coerce").to_numpy(float)
     v = v[np.isfinite(v)]
     return bool(((v == np.round(v)) | (np.abs(v) >= 1000)).all())
@@ -195,7 +195,7 @@ def _table(df: pd.DataFrame, columns: Sequence[tuple[str, str]], max_rows: int =
             if v is None or (isinstance(v, float) and not np.isfinite(v)):
                 s = "—"
             elif isinstance(v, float | np.floating):
-                s = f"{v:,.0f}" if whole[c] or abs(v) >= 1000 else f"{v:,.1f}"
+                s = f"{v:,.0f}" if whole[c] else f"{v:,.1f}"
             else:
                 s = str(v)
             cells.append(f"<td>{html.escape(s)}</td>")

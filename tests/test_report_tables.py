@@ -23,8 +23,16 @@ def test_a_column_with_fractions_shows_every_value_with_one_decimal():
     assert cells(out, 1) == ["85", "86", "87", "85"]
 
 
-def test_large_values_keep_thousands_separators_without_decimals():
-    df = pd.DataFrame({"risk": [286516.4, 12.5, 1000.0], "m": [2530.0, 2469.0, 44674.0]})
-    out = _table(df, (("risk", "Risk"), ("m", "Length")))
-    assert cells(out, 0) == ["286,516", "12.5", "1,000"]
+def test_large_values_keep_thousands_separators_and_the_column_format():
+    df = pd.DataFrame(
+        {
+            "risk": [286516.4, 12.5, 1000.0],
+            "m": [2530.0, 2469.0, 44674.0],
+            "elev": [1475.3, 1601.9, 2524.0],
+        }
+    )
+    out = _table(df, (("risk", "Risk"), ("m", "Length"), ("elev", "Elevation")))
+    # a column with one fraction below 1,000 shows every value with one decimal
+    assert cells(out, 0) == ["286,516.4", "12.5", "1,000.0"]
     assert cells(out, 1) == ["2,530", "2,469", "44,674"]
+    assert cells(out, 2) == ["1,475", "1,602", "2,524"]  # all at least 1,000: whole
