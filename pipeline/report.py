@@ -370,7 +370,7 @@ table{border-collapse:collapse;width:100%;font-size:12.5px;margin:8px 0}
 th,td{border-bottom:1px solid #e1e4e8;padding:3px 6px;text-align:left;vertical-align:top;
 max-width:360px;overflow-wrap:anywhere}
 h3{font-size:15px;margin-top:18px}
-th{background:#f6f8fa}.note{color:#57606a;font-size:12px}
+th{background:#f6f8fa;overflow-wrap:normal}.note{color:#57606a;font-size:12px}
 img.plot{max-width:100%;height:auto;display:block;margin:8px 0}
 pre{background:#f6f8fa;padding:10px;overflow:auto;font-size:11.5px;max-height:420px}
 .kpis{display:flex;gap:12px;flex-wrap:wrap}.kpi{background:#f6f8fa;border-radius:6px;padding:8px 12px}
