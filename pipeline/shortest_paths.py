@@ -102,6 +102,36 @@ def _sift_up(heap_d, heap_v, pos, i, d, v):
     pos[v] = i
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _sift_down(heap_d, heap_v, pos, hn, d, v):
+    """Put node v with key d at the root of a heap of ``hn`` slots and move it down to its
+    place (below the smaller child while that child's key is smaller)."""
+    i = 0
+    while True:
+        c = 2 * i + 1
+        if c >= hn:
+            break
+        cd = heap_d[c]
+        cv = heap_v[c]
+        if c + 1 < hn:
+            c2d = heap_d[c + 1]
+            c2v = heap_v[c + 1]
+            if c2d < cd or (c2d == cd and c2v < cv):
+                c += 1
+                cd = c2d
+                cv = c2v
+        if cd < d or (cd == d and cv < v):
+            heap_d[i] = cd
+            heap_v[i] = cv
+            pos[cv] = i
+            i = c
+        else:
+            break
+    heap_d[i] = d
+    heap_v[i] = v
+    pos[v] = i
+
+
 @njit(cache=True, nogil=True)
 def _dijkstra(
     indptr,
@@ -138,33 +168,8 @@ def _dijkstra(
         x = heap_v[0]
         pos[x] = -2  # settled: never touched again (dist[x] <= every later distance)
         hn -= 1
-        if hn > 0:
-            ld = heap_d[hn]
-            lv = heap_v[hn]
-            i = 0
-            while True:
-                c = 2 * i + 1
-                if c >= hn:
-                    break
-                cd = heap_d[c]
-                cv = heap_v[c]
-                if c + 1 < hn:
-                    c2d = heap_d[c + 1]
-                    c2v = heap_v[c + 1]
-                    if c2d < cd or (c2d == cd and c2v < cv):
-                        c += 1
-                        cd = c2d
-                        cv = c2v
-                if cd < ld or (cd == ld and cv < lv):
-                    heap_d[i] = cd
-                    heap_v[i] = cv
-                    pos[cv] = i
-                    i = c
-                else:
-                    break
-            heap_d[i] = ld
-            heap_v[i] = lv
-            pos[lv] = i
+        if hn > 0:  # the last leaf takes the root's slot and moves down
+            _sift_down(heap_d, heap_v, pos, hn, heap_d[hn], heap_v[hn])
         order[k] = x
         k += 1
         if target[x]:
