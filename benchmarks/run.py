@@ -3,7 +3,7 @@
 Usage::
 
     python benchmarks/run.py [--quick] [--json FILE] [--national] [--national-run]
-                             [--skip KEY ...] [--repeats N]
+                             [--skip KEY ...] [--repeats N] [--dask-scheduler ADDRESS]
 
 Prints a table and (with ``--json``) writes every measurement. Ratios are measured in the same
 run against baselines run in the same process (or in sibling subprocesses for memory), so
@@ -21,7 +21,8 @@ Measurements (see benchmarks/README.md for definitions and targets):
   reading every input once with the same libraries);
 * Dask execution — ``dask_*``: the national subset in ``local`` mode and on a 2-worker local
   cluster, with the CPU time of each (client and workers) and the speedup that CPU would
-  allow on this machine's cores at best (``dask_speedup_bound_on_this_machine``);
+  allow on this machine's cores at best (``dask_speedup_bound_on_this_machine``); with
+  ``--dask-scheduler ADDRESS``, on the running cluster at that address instead;
 * ``--national``: DEM sampling of the national stations over the VRT mosaic;
   ``--national-run`` also times ``altigrade run`` on the national scenario.
 
@@ -357,39 +358,70 @@ def _commit() -> str | None:
     return (r.stdout.strip() or None) if r.returncode == 0 else None
 
 
-def dask_measurements(sc: scenarios.Scenario, notes: dict, workers: int = 2) -> dict:
+def dask_execution_lines(workers: int = 2, scheduler: str | None = None) -> str:
+    """The ``[execution]`` lines of the Dask run: a local cluster of ``workers`` worker
+    processes started by the run, or the running cluster at ``scheduler`` (its workers)."""
+    if scheduler:
+        return f'mode = "dask"\nscheduler = {json.dumps(scheduler)}\n'
+    return f'mode = "dask"\nworkers = {workers}\n'
+
+
+def dask_measurements(
+    sc: scenarios.Scenario, notes: dict, workers: int = 2, scheduler: str | None = None
+) -> dict:
     """``dask_2_workers_speedup`` and ``dask_results_identical``.
 
     The national subset scenario is run twice through the CLI in fresh processes: with
     ``[execution] mode = "local"`` and with ``mode = "dask"`` on a local cluster of
-    ``workers`` worker processes on 127.0.0.1 (its start-up is part of the measured time).
-    Identical means every CSV and every GeoPackage layer of the two runs are equal.
+    ``workers`` worker processes on 127.0.0.1 (its start-up is part of the measured time),
+    or, with ``scheduler``, on the running cluster at that address (whatever workers it has:
+    ``dask_workers``; the key keeps its name, and a note says when they are not two). On a
+    running cluster the workers' CPU is not this machine's to count, so the CPU keys and the
+    bound are left out. Identical means every CSV and every GeoPackage layer of the two runs
+    are equal.
     """
     out: dict = {"dask_2_workers_speedup": None, "dask_results_identical": None}
     runs = {}
     with tempfile.TemporaryDirectory(prefix="altigrade-dask-") as tmp:
         for mode in ("local", "dask"):
-            extra = f'mode = "{mode}"\n' + (f"workers = {workers}\n" if mode == "dask" else "")
+            extra = (
+                dask_execution_lines(workers, scheduler) if mode == "dask" else ('mode = "local"\n')
+            )
             r = _run_scenario(sc, extra, Path(tmp) / mode, "-q")
             if r["returncode"] != 0:
                 notes["dask"] = f"{mode} run failed: {r['stderr_tail'][-500:]}"
                 return out
             runs[mode] = r
         same = _run_outputs_equal(Path(tmp) / "local", Path(tmp) / "dask")
+        try:
+            described = json.loads(
+                (Path(tmp) / "dask" / "manifest.json").read_text(encoding="utf-8")
+            )["execution"]
+        except (OSError, ValueError, KeyError):
+            described = {}
     out["dask_local_run_s"] = runs["local"]["wall_s"]
     out["dask_run_s"] = runs["dask"]["wall_s"]
     out["dask_local_run_peak_rss_mb"] = runs["local"]["peak_rss_mb"]
     out["dask_client_peak_rss_mb"] = runs["dask"]["peak_rss_mb"]
     out["dask_2_workers_speedup"] = runs["local"]["wall_s"] / runs["dask"]["wall_s"]
-    # CPU of the client and its workers; on os.cpu_count() cores the Dask run cannot finish
-    # sooner than that CPU spread perfectly over them, whatever the scheduling
-    out["dask_local_run_cpu_s"] = runs["local"]["cpu_s"]
-    out["dask_run_cpu_s"] = runs["dask"]["cpu_s"]
-    cores = min(os.cpu_count() or 1, workers + 1)
-    out["dask_speedup_bound_on_this_machine"] = runs["local"]["wall_s"] / (
-        runs["dask"]["cpu_s"] / cores
-    )
+    out["dask_workers"] = described.get("workers", workers)
+    out["dask_scheduler"] = described.get("scheduler", scheduler)
     out["dask_cores"] = os.cpu_count()
+    out["dask_local_run_cpu_s"] = runs["local"]["cpu_s"]
+    if scheduler:
+        if out["dask_workers"] != 2:
+            notes["dask_2_workers_speedup"] = (
+                f"measured on the cluster at {scheduler}, which has {out['dask_workers']} "
+                "workers, not 2"
+            )
+    else:
+        # CPU of the client and its workers; on os.cpu_count() cores the Dask run cannot
+        # finish sooner than that CPU spread perfectly over them, whatever the scheduling
+        out["dask_run_cpu_s"] = runs["dask"]["cpu_s"]
+        cores = min(os.cpu_count() or 1, workers + 1)
+        out["dask_speedup_bound_on_this_machine"] = runs["local"]["wall_s"] / (
+            runs["dask"]["cpu_s"] / cores
+        )
     out["dask_results_identical"] = all(same.values())
     out["dask_compared_outputs"] = same
     out["dask_scenario"] = sc.meta.get("name", str(sc.folder.name))
@@ -589,6 +621,7 @@ TABLE_KEYS = (
     "state_run_local_s",
     "state_run_local_vs_io_floor",
     "dask_2_workers_speedup",
+    "dask_workers",
     "dask_local_run_cpu_s",
     "dask_run_cpu_s",
     "dask_speedup_bound_on_this_machine",
@@ -645,6 +678,14 @@ def main(argv: list[str] | None = None) -> int:
         help="measurements to leave out",
     )
     ap.add_argument("--repeats", type=int, default=None, help="timing repeats (best kept)")
+    ap.add_argument(
+        "--dask-scheduler",
+        metavar="ADDRESS",
+        default=None,
+        help="measure the dask_* keys on the running Dask cluster at ADDRESS (e.g. "
+        "tcp://10.0.0.5:8786; its workers need altigrade installed) instead of a 2-worker "
+        "local cluster started by the run",
+    )
     ap.add_argument("--_io-floor", dest="io_floor", type=Path, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.io_floor:
@@ -708,8 +749,9 @@ def main(argv: list[str] | None = None) -> int:
         # the national subset: the national scenario's quick variant (15,000 stations on a
         # VRT of four tiles), in both modes
         nat_sub = scenarios.get_scenario("national", True, log=_log)
-        _log("altigrade run on the national subset, local and on Dask (2 workers) ...")
-        res.update(dask_measurements(nat_sub, notes))
+        on = f"the cluster at {args.dask_scheduler}" if args.dask_scheduler else "2 workers"
+        _log(f"altigrade run on the national subset, local and on Dask ({on}) ...")
+        res.update(dask_measurements(nat_sub, notes, scheduler=args.dask_scheduler))
     if args.national or args.national_run:
         nat = scenarios.get_scenario("national", args.quick, log=_log)
         res["national_scenario"] = {k: v for k, v in nat.meta.items() if k != "dem_tiles"}

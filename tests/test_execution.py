@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import sys
 import time
+import types
 from pathlib import Path
 
 import pytest
@@ -162,6 +163,40 @@ def test_how_many_stages_run_at_once(mode, workers, expected, per_piece):
     assert ex.concurrent_stages == expected
     assert ex.overlaps_stages == (expected > 1)
     assert ex.threads_per_piece == per_piece  # threads a partition's town trees may use
+
+
+def _bench_harness():
+    """benchmarks/run.py, imported as a module of its own (it is a script, not a package)."""
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location(
+        "altigrade_benchmarks_run", REPO / "benchmarks" / "run.py"
+    )
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_the_dask_benchmark_measures_on_the_running_cluster_it_is_given(
+    small_demo_inputs, running_cluster, tmp_path
+):
+    """``benchmarks/run.py --dask-scheduler ADDRESS`` runs the Dask side of its comparison on
+    the cluster at that address (for a machine or cluster with more cores than these), not on
+    a local cluster of its own; it reports that cluster's workers, and leaves out the CPU
+    bound it cannot count there. Both runs' outputs are compared as in the default case."""
+    bench = _bench_harness()
+    assert bench.dask_execution_lines(2) == 'mode = "dask"\nworkers = 2\n'
+    cfg = tmp_path / "scenario.toml"
+    cfg.write_text(demo_config(small_demo_inputs, PARTITIONS), encoding="utf-8")
+    scenario = types.SimpleNamespace(config=cfg, folder=tmp_path, meta={"name": "small demo"})
+    notes: dict = {}
+    out = bench.dask_measurements(scenario, notes, scheduler=running_cluster)
+    assert notes == {}
+    assert out["dask_scheduler"] == running_cluster and out["dask_workers"] == 2
+    assert out["dask_results_identical"] is True
+    assert out["dask_2_workers_speedup"] > 0
+    assert "dask_speedup_bound_on_this_machine" not in out and "dask_run_cpu_s" not in out
+    assert not list(tmp_path.glob(".bench-*.toml"))  # the run configs are removed
 
 
 def test_a_scheduler_that_does_not_answer_exits_2_naming_the_key(small_demo_inputs, tmp_path):
