@@ -67,7 +67,8 @@ __all__ = [
 ]
 
 #: key → (comparison, threshold, what it means). Checked after the run.
-TARGETS: dict[str, tuple[str, float, str]] = {
+#: The issue's targets: key → (comparison, threshold, meaning); "==" compares exactly.
+TARGETS: dict[str, tuple[str, float | bool, str]] = {
     "dem_sampling_vs_rasterio_sample": (">=", 3.0, "≥ 3× rasterio sample at 100k points"),
     "dem_sampling_vs_rasterio_sample_1m": (">=", 10.0, "≥ 10× rasterio sample at 1M points"),
     "dem_sampling_vs_in_memory": (">=", 0.8, "≥ 0.8× the in-memory approach's speed"),
@@ -75,6 +76,10 @@ TARGETS: dict[str, tuple[str, float, str]] = {
     "dem_sampling_vs_decode_floor": ("<=", 1.5, "≤ 1.5× the block decode floor"),
     "state_run_vs_io_floor": ("<=", 4.0, "state run ≤ 4× the I/O floor"),
     "state_run_peak_rss_mb": ("<=", 3072.0, "state run peak RSS ≤ 3 GB"),
+    "corridor_vs_networkx": (">=", 20.0, "corridors ≥ 20× networkx"),
+    "corridor_vs_bare_dijkstra": ("<=", 2.0, "corridors ≤ 2× bare SciPy Dijkstra"),
+    "dask_2_workers_speedup": (">=", 1.6, "national subset ≥ 1.6× faster on 2 Dask workers"),
+    "dask_results_identical": ("==", True, "Dask results identical to the local run's"),
 }
 
 CORRIDOR_KEYS = ("corridor_s_per_source", "corridor_vs_networkx", "corridor_vs_bare_dijkstra")
@@ -582,8 +587,14 @@ def _check_targets(res: dict) -> dict:
     out = {}
     for key, (op, thr, what) in TARGETS.items():
         v = res.get(key)
-        ok = None if v is None else (v >= thr if op == ">=" else v <= thr)
-        out[key] = {"target": f"{op} {thr:g}", "value": v, "met": ok, "meaning": what}
+        if v is None:
+            ok = None
+        elif op == "==":
+            ok = v is thr if isinstance(thr, bool) else v == thr
+        else:
+            ok = v >= thr if op == ">=" else v <= thr
+        shown = _fmt(thr) if isinstance(thr, bool) else f"{thr:g}"
+        out[key] = {"target": f"{op} {shown}", "value": v, "met": ok, "meaning": what}
     return out
 
 
