@@ -66,8 +66,8 @@ __all__ = [
     "main",
 ]
 
-#: key → (comparison, threshold, what it means). Checked after the run.
-#: The issue's targets: key → (comparison, threshold, meaning); "==" compares exactly.
+#: The issue's targets: key → (comparison, threshold, meaning), checked after the run;
+#: "==" compares exactly.
 TARGETS: dict[str, tuple[str, float | bool, str]] = {
     "dem_sampling_vs_rasterio_sample": (">=", 3.0, "≥ 3× rasterio sample at 100k points"),
     "dem_sampling_vs_rasterio_sample_1m": (">=", 10.0, "≥ 10× rasterio sample at 1M points"),
@@ -389,9 +389,8 @@ def dask_measurements(
     runs = {}
     with tempfile.TemporaryDirectory(prefix="altigrade-dask-") as tmp:
         for mode in ("local", "dask"):
-            extra = (
-                dask_execution_lines(workers, scheduler) if mode == "dask" else ('mode = "local"\n')
-            )
+            local = 'mode = "local"\n'
+            extra = dask_execution_lines(workers, scheduler) if mode == "dask" else local
             r = _run_scenario(sc, extra, Path(tmp) / mode, "-q")
             if r["returncode"] != 0:
                 notes["dask"] = f"{mode} run failed: {r['stderr_tail'][-500:]}"
