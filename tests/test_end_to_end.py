@@ -57,6 +57,12 @@ def test_geopackage_layers_columns_and_crs(small_demo_run):
         assert c in cols, c
     zinfo = pyogrio.read_info(out / "altigrade.gpkg", layer="justified_zones")
     assert zinfo["features"] >= 2 and "band_label" in zinfo["fields"]
+    # every layer declares one geometry type (OGC GeoPackage 1.3, gpkg_geometry_columns:
+    # a layer of polygons and multipolygons is written as multipolygons, not as the generic
+    # GEOMETRY that GDAL reads back as "Unknown")
+    declared = dict(pyogrio.list_layers(out / "altigrade.gpkg"))
+    assert "Unknown" not in declared.values(), declared
+    assert declared["justified_zones"] == "MultiPolygon"
 
 
 def test_row_accounting_rows_in_equal_accepted_plus_rejected(small_demo_run, small_demo_inputs):
