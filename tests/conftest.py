@@ -30,6 +30,18 @@ def run_cli(*args: str, cwd: Path | None = None, env: dict | None = None, timeou
     )
 
 
+def bench_harness():
+    """benchmarks/run.py, imported as a module of its own (it is a script, not a package)."""
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location(
+        "altigrade_benchmarks_run", REPO / "benchmarks" / "run.py"
+    )
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
 @pytest.fixture(scope="session")
 def demo_cache(tmp_path_factory) -> Path:
     return tmp_path_factory.mktemp("demo-cache")

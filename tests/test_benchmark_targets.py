@@ -7,19 +7,7 @@ printed table unseen.
 
 from __future__ import annotations
 
-import importlib.util
-
-from conftest import REPO
-
-
-def _harness():
-    spec = importlib.util.spec_from_file_location(
-        "altigrade_benchmarks_run_targets", REPO / "benchmarks" / "run.py"
-    )
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
-
+from conftest import bench_harness
 
 #: Every key with a target in the issue, and its threshold.
 ISSUE_TARGETS = {
@@ -38,12 +26,12 @@ ISSUE_TARGETS = {
 
 
 def test_every_target_of_the_issue_is_checked():
-    bench = _harness()
+    bench = bench_harness()
     assert {k: v[:2] for k, v in bench.TARGETS.items()} == ISSUE_TARGETS
 
 
 def test_targets_are_judged_met_missed_or_not_measured():
-    bench = _harness()
+    bench = bench_harness()
     res = {
         "dask_2_workers_speedup": 1.25,
         "corridor_vs_bare_dijkstra": 2.0,

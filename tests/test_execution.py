@@ -15,7 +15,7 @@ import types
 from pathlib import Path
 
 import pytest
-from conftest import REPO, run_cli
+from conftest import REPO, bench_harness, run_cli
 from test_determinism import layer_hashes
 
 pytest.importorskip("distributed")
@@ -165,18 +165,6 @@ def test_how_many_stages_run_at_once(mode, workers, expected, per_piece):
     assert ex.threads_per_piece == per_piece  # threads a partition's town trees may use
 
 
-def _bench_harness():
-    """benchmarks/run.py, imported as a module of its own (it is a script, not a package)."""
-    import importlib.util
-
-    spec = importlib.util.spec_from_file_location(
-        "altigrade_benchmarks_run", REPO / "benchmarks" / "run.py"
-    )
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
-
-
 def test_the_dask_benchmark_measures_on_the_running_cluster_it_is_given(
     small_demo_inputs, running_cluster, tmp_path
 ):
@@ -184,7 +172,7 @@ def test_the_dask_benchmark_measures_on_the_running_cluster_it_is_given(
     the cluster at that address (for a machine or cluster with more cores than these), not on
     a local cluster of its own; it reports that cluster's workers, and leaves out the CPU
     bound it cannot count there. Both runs' outputs are compared as in the default case."""
-    bench = _bench_harness()
+    bench = bench_harness()
     assert bench.dask_execution_lines(2) == 'mode = "dask"\nworkers = 2\n'
     cfg = tmp_path / "scenario.toml"
     cfg.write_text(demo_config(small_demo_inputs, PARTITIONS), encoding="utf-8")
