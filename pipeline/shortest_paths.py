@@ -84,22 +84,29 @@ def _reset(touched, k, dist, pred_node, pred_entry, flow):
 
 
 @njit(cache=True, nogil=True, inline="always")
+def _before(da, va, db, vb):
+    """Whether heap key (da, va) comes before (db, vb): by distance, then by node."""
+    return da < db or (da == db and va < vb)
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _put(heap_d, heap_v, pos, i, d, v):
+    """Node v with key d into heap slot i."""
+    heap_d[i] = d
+    heap_v[i] = v
+    pos[v] = i
+
+
+@njit(cache=True, nogil=True, inline="always")
 def _sift_up(heap_d, heap_v, pos, i, d, v):
     """Put node v with key d at heap slot i and move it up to its place."""
     while i > 0:
         p = (i - 1) >> 1
-        pd = heap_d[p]
-        pv = heap_v[p]
-        if d < pd or (d == pd and v < pv):
-            heap_d[i] = pd
-            heap_v[i] = pv
-            pos[pv] = i
-            i = p
-        else:
+        if not _before(d, v, heap_d[p], heap_v[p]):
             break
-    heap_d[i] = d
-    heap_v[i] = v
-    pos[v] = i
+        _put(heap_d, heap_v, pos, i, heap_d[p], heap_v[p])
+        i = p
+    _put(heap_d, heap_v, pos, i, d, v)
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -111,25 +118,13 @@ def _sift_down(heap_d, heap_v, pos, hn, d, v):
         c = 2 * i + 1
         if c >= hn:
             break
-        cd = heap_d[c]
-        cv = heap_v[c]
-        if c + 1 < hn:
-            c2d = heap_d[c + 1]
-            c2v = heap_v[c + 1]
-            if c2d < cd or (c2d == cd and c2v < cv):
-                c += 1
-                cd = c2d
-                cv = c2v
-        if cd < d or (cd == d and cv < v):
-            heap_d[i] = cd
-            heap_v[i] = cv
-            pos[cv] = i
-            i = c
-        else:
+        if c + 1 < hn and _before(heap_d[c + 1], heap_v[c + 1], heap_d[c], heap_v[c]):
+            c += 1
+        if not _before(heap_d[c], heap_v[c], d, v):
             break
-    heap_d[i] = d
-    heap_v[i] = v
-    pos[v] = i
+        _put(heap_d, heap_v, pos, i, heap_d[c], heap_v[c])
+        i = c
+    _put(heap_d, heap_v, pos, i, d, v)
 
 
 @njit(cache=True, nogil=True)
